@@ -1,0 +1,290 @@
+"""What a user does, as Python functions: compress, decompress, verify, read_index.
+
+Each function takes paths, validates everything before writing anything, and raises a
+`RowcastError` whose message is one line naming the file and the reason.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from collections import defaultdict
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path, PurePosixPath
+
+import numpy as np
+
+from rowcast import archive, codec
+from rowcast.archive import ArchiveError, Entry, IndexEntry, ModelIdentity
+from rowcast.entropy import PayloadError
+from rowcast.errors import DataError, UsageError
+from rowcast.planes import PLANES, ImageError, checksum, read_planes, to_image
+from rowcast.predictor import Engine
+from rowcast.quantize import IntModel, ModelError, load_model
+
+IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif", ".ppm",
+                  ".pgm", ".pnm", ".tga"}
+DEFAULT_BATCH = 32
+
+Progress = Callable[[int], None] | None  # called with the number of images or rows just done
+
+
+@dataclass(frozen=True)
+class Summary:
+    """What `compress` wrote: per-entry sizes and the model's cross-entropy."""
+
+    archive: Path
+    model: ModelIdentity
+    entries: list[dict] = field(default_factory=list)
+    archive_bytes: int = 0
+
+    @property
+    def subpixels(self) -> int:
+        return sum(e["width"] * e["height"] * PLANES[e["mode"]] for e in self.entries)
+
+    @property
+    def bits_per_subpixel(self) -> float:
+        return 8.0 * self.archive_bytes / max(1, self.subpixels)
+
+
+@dataclass(frozen=True)
+class Check:
+    """The outcome of `verify`: the entries checked and one line per problem found."""
+
+    checked: int
+    problems: list[str]
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+
+def _model(path: Path | str | None) -> IntModel:
+    try:
+        return load_model(Path(path) if path is not None else None)
+    except ModelError as exc:
+        raise UsageError(str(exc)) from None
+
+
+def identity(model: IntModel) -> ModelIdentity:
+    """The archive's record of a model."""
+    return ModelIdentity(model.name, model.sha256)
+
+
+def collect_inputs(inputs: Sequence[Path | str]) -> list[tuple[Path, str]]:
+    """(file, archive path) for every input: files as named, directories recursively.
+
+    A file keeps its own name; files under a directory keep their path relative to it.
+    Only image suffixes are taken from directories; a file named directly is always tried.
+    """
+    found: list[tuple[Path, str]] = []
+    for raw in inputs:
+        src = Path(raw)
+        if src.is_dir():
+            for path in sorted(src.rglob("*")):
+                if path.is_file() and path.suffix.lower() in IMAGE_SUFFIXES:
+                    found.append((path, path.relative_to(src).as_posix()))
+        elif src.exists():
+            found.append((src, src.name))
+        else:
+            raise UsageError(f"{src}: no such file or directory")
+    seen: dict[str, Path] = {}
+    for path, name in found:
+        out = output_name(name)
+        if out in seen:
+            raise UsageError(f"{path}: would be restored as {out}, like {seen[out]}")
+        seen[out] = path
+    if not found:
+        raise UsageError(f"{', '.join(map(str, inputs))}: no images found")
+    return found
+
+
+def output_name(path: str) -> str:
+    """Where an entry is restored, relative to the output directory: always a PNG."""
+    return str(PurePosixPath(path).with_suffix(".png"))
+
+
+def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
+             force: bool = False, progress: Progress = None) -> Summary:
+    """Compress image files and directories into one archive at `dest` (atomic)."""
+    dest = Path(dest)
+    if dest.is_dir():
+        raise UsageError(f"{dest}: is a directory")
+    if dest.exists() and not force:
+        raise UsageError(f"{dest}: already exists (use --force to replace it)")
+    if not dest.parent.is_dir():
+        raise UsageError(f"{dest}: no such directory {dest.parent}")
+    files = collect_inputs(inputs)
+    net = _model(model)
+    images = []
+    for path, name in files:
+        try:
+            planes, mode = read_planes(path)
+        except ImageError as exc:
+            raise DataError(str(exc)) from None
+        images.append((name, planes, mode))
+    engine = Engine(net)
+    groups: dict[tuple, list[int]] = defaultdict(list)
+    for i, (_, planes, mode) in enumerate(images):
+        groups[(mode, planes.shape)].append(i)
+    coded: dict[int, codec.Coded] = {}
+    for members in groups.values():
+        for start in range(0, len(members), DEFAULT_BATCH):
+            part = members[start : start + DEFAULT_BATCH]
+            for i, c in zip(part, codec.encode_batch(engine, [images[i][1] for i in part]),
+                            strict=True):
+                coded[i] = c
+                if progress:
+                    progress(1)
+    rows, entries = [], []
+    for i, (name, planes, mode) in enumerate(images):
+        raw = planes.tobytes()
+        c = coded[i]
+        method, payload = ("model", c.payload) if len(c.payload) < len(raw) else ("stored", raw)
+        entries.append(Entry(name, mode, planes.shape[2], planes.shape[1], method,
+                             checksum(planes), payload))
+        rows.append({"path": name, "mode": mode, "width": planes.shape[2],
+                     "height": planes.shape[1], "method": method, "bytes": len(payload),
+                     "cross_entropy_bits": c.cross_entropy})
+    try:
+        size = archive.write_archive(dest, identity(net), entries, force=force)
+    except ArchiveError as exc:
+        raise UsageError(str(exc)) from None
+    return Summary(dest, identity(net), rows, size)
+
+
+def read_index(src: Path | str) -> tuple[ModelIdentity, list[IndexEntry]]:
+    """The model identity and entries of an archive, without decoding anything."""
+    src = Path(src)
+    if not src.exists():
+        raise UsageError(f"{src}: no such file")
+    try:
+        return archive.read_index(src)
+    except ArchiveError as exc:
+        raise DataError(str(exc)) from None
+
+
+def decode_entries(src: Path | str, *, model: Path | str | None = None,
+                   batch: int = DEFAULT_BATCH, progress: Progress = None,
+                   only: Sequence[str] | None = None) -> Iterator[tuple[IndexEntry, np.ndarray]]:
+    """Decode an archive's entries (or those named in `only`), checking each checksum.
+
+    Same-sized entries are decoded together in batches of `batch`. Yields (entry, planes).
+    """
+    src = Path(src)
+    ident, entries = read_index(src)
+    if only is not None:
+        wanted = set(only)
+        entries = [e for e in entries if e.path in wanted]
+    net = None
+    if any(e.method == "model" for e in entries):
+        net = _model(model)
+        if net.sha256 != ident.sha256:
+            raise UsageError(f"{src}: was made with model {ident.name} "
+                             f"({ident.sha256.hex()[:12]}), not {net.name} "
+                             f"({net.sha256.hex()[:12]}); pass that model with --model")
+    engine = Engine(net) if net is not None else None
+    groups: dict[tuple, list[IndexEntry]] = defaultdict(list)
+    for e in entries:
+        groups[(e.method, e.mode, e.height, e.width)].append(e)
+    for (method, mode, height, width), members in groups.items():
+        planes = PLANES[mode]
+        for start in range(0, len(members), batch):
+            part = members[start : start + batch]
+            payloads = [_payload(src, e) for e in part]
+            if method == "stored":
+                decoded = [_stored(src, e, p, planes) for e, p in zip(part, payloads, strict=True)]
+            else:
+                try:
+                    decoded = codec.decode_batch(engine, payloads, planes, height, width,
+                                                 progress=progress)
+                except (PayloadError, ValueError, RuntimeError) as exc:
+                    names = ", ".join(e.path for e in part)
+                    raise DataError(f"{src}: cannot decode {names} ({exc})") from None
+            for e, planes_out in zip(part, decoded, strict=True):
+                if checksum(planes_out) != e.checksum:
+                    raise DataError(f"{src}: {e.path} decodes to pixels whose checksum differs")
+                yield e, planes_out
+
+
+def _payload(src: Path, entry: IndexEntry) -> bytes:
+    try:
+        return archive.read_payload(src, entry)
+    except ArchiveError as exc:
+        raise DataError(str(exc)) from None
+
+
+def _stored(src: Path, entry: IndexEntry, payload: bytes, planes: int) -> np.ndarray:
+    if len(payload) != planes * entry.height * entry.width:
+        raise DataError(f"{src}: {entry.path} has a stored payload of the wrong length")
+    return np.frombuffer(payload, np.uint8).reshape(planes, entry.height, entry.width)
+
+
+def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None = None,
+               force: bool = False, batch: int = DEFAULT_BATCH,
+               progress: Progress = None) -> list[Path]:
+    """Restore every entry as a PNG under `outdir`; all or nothing.
+
+    Files are decoded into a staging folder inside `outdir` and moved into place only
+    when every entry has decoded and matched its checksum.
+    """
+    outdir = Path(outdir)
+    if outdir.exists() and not outdir.is_dir():
+        raise UsageError(f"{outdir}: not a directory")
+    _, entries = read_index(src)
+    targets = [outdir / output_name(e.path) for e in entries]
+    clashes = [t for t in targets if t.exists()]
+    if clashes and not force:
+        raise UsageError(f"{clashes[0]}: already exists (use --force to replace it)")
+    outdir.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=".rowcast-", dir=outdir))
+    try:
+        for e, planes in decode_entries(src, model=model, batch=batch, progress=progress):
+            tmp = stage / output_name(e.path)
+            tmp.parent.mkdir(parents=True, exist_ok=True)
+            to_image(planes, e.mode).save(tmp, format="PNG")
+        written = []
+        for e, target in zip(entries, targets, strict=True):
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(stage / output_name(e.path), target)
+            written.append(target)
+        return written
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def verify(src: Path | str, *, against: Path | str | None = None,
+           model: Path | str | None = None, batch: int = DEFAULT_BATCH,
+           progress: Progress = None) -> Check:
+    """Decode everything and check each checksum, and every pixel against `against` if given.
+
+    With `against`, every image under that directory must be in the archive too, so that
+    a verified archive can stand in for the directory.
+    """
+    problems: list[str] = []
+    seen: set[str] = set()
+    checked = 0
+    originals = dict((name, path) for path, name in collect_inputs([against])) if against else {}
+    try:
+        for e, planes in decode_entries(src, model=model, batch=batch, progress=progress):
+            checked += 1
+            seen.add(e.path)
+            if against is None:
+                continue
+            if e.path not in originals:
+                problems.append(f"{e.path}: not found under {against}")
+                continue
+            try:
+                orig, mode = read_planes(originals[e.path])
+            except ImageError as exc:
+                problems.append(str(exc))
+                continue
+            if mode != e.mode or not np.array_equal(orig, planes):
+                problems.append(f"{originals[e.path]}: pixels differ from the archive's {e.path}")
+    except DataError as exc:
+        problems.append(str(exc))
+    problems += [f"{path}: not in the archive" for name, path in sorted(originals.items())
+                 if name not in seen and not problems]
+    return Check(checked, problems)

@@ -1,0 +1,146 @@
+"""Integer-exact inference of the predictor: a parallel pass for the encoder and an
+incremental pass for the decoder, both giving the same integers on any machine.
+
+Integers travel in float32 (or float64) tensors only because every layer's accumulator bound,
+checked when the model is loaded, keeps all partial sums exact in that type; so every kernel,
+thread count and summation order gives the same sums. Requantisation is
+out = floor((acc * mult + 2**(shift-1)) / 2**shift), clamped to 0..255 after ReLU layers; it
+runs in float64, where acc * mult < 2**40 and the power-of-two division are exact.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+
+from rowcast.network import LEFT, left_window, row_stack_input, with_valid
+from rowcast.quantize import EXACT_F32, IntLayer, IntModel
+
+torch.backends.cudnn.allow_tf32 = False
+torch.backends.cuda.matmul.allow_tf32 = False
+
+
+def _dtype(layer: IntLayer) -> torch.dtype:
+    return torch.float32 if layer.bound < EXACT_F32 else torch.float64
+
+
+@functools.cache
+def _weights(layer: IntLayer) -> tuple[torch.Tensor, torch.Tensor]:
+    dt = _dtype(layer)
+    return torch.from_numpy(layer.weight.astype(np.float64)).to(dt), torch.from_numpy(
+        layer.bias.astype(np.float64)).to(dt)
+
+
+def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
+    """Requantise exact integer accumulators (B, C, H, W) per channel; float64 result."""
+    mult = torch.from_numpy(layer.mult.astype(np.float64)).view(1, -1, 1, 1)
+    y = torch.floor((acc.to(torch.float64) * mult + 2.0 ** (layer.shift - 1)) * 2.0**-layer.shift)
+    return torch.clamp(y, 0, 255) if layer.relu else y
+
+
+def requantise_np(acc: np.ndarray, layer: IntLayer) -> np.ndarray:
+    """The same for accumulators (N, C) in a float64 numpy array."""
+    y = np.floor((acc * layer.mult + 2.0 ** (layer.shift - 1)) * 2.0**-layer.shift)
+    return np.minimum(np.maximum(y, 0.0), 255.0) if layer.relu else y
+
+
+def conv_fast(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
+    """Accumulators of one layer with torch's kernels, valid under the layer's bound."""
+    w, b = _weights(layer)
+    kh, kw = layer.weight.shape[2:]
+    a = F.pad(a.to(w.dtype), (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0))
+    return F.conv2d(a, w) + b.view(1, -1, 1, 1)
+
+
+def conv_reference(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
+    """The same accumulators in int64 loops over kernel taps: slow, order-free, the definition."""
+    kh, kw = layer.weight.shape[2:]
+    a = F.pad(a.to(torch.int64), (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0))
+    w = torch.from_numpy(layer.weight.astype(np.int64))
+    h_out, w_out = a.shape[2] - kh + 1, a.shape[3] - kw + 1
+    acc = torch.from_numpy(layer.bias).view(1, -1, 1, 1).expand(a.shape[0], -1, h_out, w_out)
+    acc = acc.clone()
+    for i in range(kh):
+        for j in range(kw):
+            tap = a[:, :, i : i + h_out, j : j + w_out]
+            acc += torch.einsum("bchw,oc->bohw", tap, w[:, :, i, j])
+    return acc
+
+
+class Engine:
+    """Runs an IntModel with fast kernels, or with the int64 reference if the self-test fails."""
+
+    def __init__(self, model: IntModel) -> None:
+        self.model = model
+        self.rows = model.layers[: model.depth]
+        self.head1, self.head2, self.out = model.layers[model.depth :]
+        self.conv = conv_fast if self_test(model) else conv_reference
+        w1 = self.head1.weight[:, :, 0, 0].T.astype(np.float64)  # exact: bounds < 2**53
+        self._w1_rows, self._w1_left = w1[: model.width], w1[model.width :]
+        self._w2 = self.head2.weight[:, :, 0, 0].T.astype(np.float64)
+        self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64)
+
+    # -- encoder: everything at once -------------------------------------------------------
+    def parallel(self, x: np.ndarray) -> np.ndarray:
+        """Raw integer outputs (B, H, W, OUTPUTS) int64 for images x (B, 3, H, W) uint8."""
+        t = torch.from_numpy(x).to(torch.float32)
+        a = row_stack_input(t)
+        for layer in self.rows:
+            a = requantise(self.conv(a, layer), layer)
+        h = torch.cat([a.to(torch.float32), left_window(t)], 1)
+        for layer in (self.head1, self.head2, self.out):
+            h = requantise(self.conv(h, layer), layer)
+        return h.permute(0, 2, 3, 1).to(torch.int64).numpy()
+
+    # -- decoder: a row at a time, then a pixel at a time ------------------------------------
+    def start(self, batch: int, width: int) -> list[torch.Tensor]:
+        """Row-stack state before row 0: each layer's previous input row is top padding."""
+        chans = [4] + [layer.weight.shape[0] for layer in self.rows[:-1]]
+        return [torch.zeros(batch, c, 1, width) for c in chans]
+
+    def next_row(self, state: list[torch.Tensor], above: np.ndarray | None) -> np.ndarray:
+        """Advance the row stack by one row; returns head-1 accumulators (B, W, hidden).
+
+        `above` is the last decoded row (B, 3, W) uint8, or None before row 0.
+        """
+        if above is None:
+            a = torch.zeros_like(state[0])
+        else:
+            a = with_valid(torch.from_numpy(above).to(torch.float32).unsqueeze(2))
+        for i, layer in enumerate(self.rows):
+            pair = torch.cat([state[i], a], 2)
+            state[i] = a
+            a = requantise(self.conv(pair, layer, pad_top=False), layer).to(torch.float32)
+        feats = a[:, :, 0].permute(0, 2, 1).to(torch.float64).numpy()  # (B, W, width)
+        return feats @ self._w1_rows + self.head1.bias
+
+    def pixel(self, acc_rows: np.ndarray, row: np.ndarray, x: int) -> np.ndarray:
+        """Raw integer outputs (B, OUTPUTS) at column x, given the current row (B, 3, W) so far."""
+        lo = max(0, x - LEFT)
+        left = np.zeros((row.shape[0], LEFT, 4))
+        left[:, : x - lo, :3] = row[:, :, lo:x][:, :, ::-1].transpose(0, 2, 1)
+        left[:, : x - lo, 3] = 255.0
+        h = requantise_np(acc_rows[:, x] + left.reshape(len(left), -1) @ self._w1_left,
+                          self.head1)
+        h = requantise_np(h @ self._w2 + self.head2.bias, self.head2)
+        return requantise_np(h @ self._w3 + self.out.bias, self.out).astype(np.int64)
+
+
+@functools.cache
+def self_test(model: IntModel) -> bool:
+    """Known-answer check at load: fast kernels vs the int64 reference on fixed inputs.
+
+    True when they agree on every layer; otherwise the engine uses the reference path.
+    """
+    rng = np.random.default_rng(1234)
+    for layer in model.layers:
+        cin = layer.weight.shape[1]
+        a = torch.from_numpy(rng.integers(0, 256, size=(2, cin, 5, 9)).astype(np.float32))
+        a[0, :, 0] = 255.0  # include the extreme inputs that reach the bound
+        if not torch.equal(conv_fast(a, layer).to(torch.int64), conv_reference(a, layer)):
+            return False
+    return True
+

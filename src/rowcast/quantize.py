@@ -1,0 +1,183 @@
+"""Integer models: export from a trained network, model files, identity and the exactness bound.
+
+A model file is one safetensors file: int8 weights, int32 biases and requantisation
+multipliers per layer, and a JSON card in the metadata (architecture, shifts, the accumulator
+bound of every layer, training summary). No pickle. The model's identity is the SHA-256 of
+its canonical bytes: the card as sorted compact JSON, then each tensor in name order.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import torch
+from safetensors import SafetensorError
+from safetensors.numpy import load, save
+
+from rowcast import family as fam
+from rowcast.network import Predictor
+
+FORMAT = "rowcast-model"
+VERSION = 1
+MULT_BITS = 16  # requantisation multipliers are below 2**16
+EXACT_F32 = 1 << 24  # integers below this add exactly in float32
+EXACT_F64 = 1 << 53
+DEFAULT_MODEL = "default.safetensors"
+
+
+class ModelError(Exception):
+    """A model file that cannot be used; the message names the file and the reason."""
+
+
+@dataclass(frozen=True, eq=False)
+class IntLayer:
+    """One integer layer: acc = conv(a, weight) + bias; out = (acc * mult + half) >> shift."""
+
+    weight: np.ndarray  # int8 (cout, cin, kh, kw)
+    bias: np.ndarray  # int64 (cout,)
+    mult: np.ndarray  # int64 (cout,)
+    shift: int
+    relu: bool
+
+    @property
+    def bound(self) -> int:
+        """Largest |accumulator| any input in 0..255 can produce: the exactness bound."""
+        w = np.abs(self.weight.astype(np.int64)).reshape(len(self.weight), -1).sum(1)
+        return int((w * 255 + np.abs(self.bias)).max())
+
+
+@dataclass(frozen=True, eq=False)
+class IntModel:
+    """An integer predictor: row-stack layers, two head layers, the output layer."""
+
+    name: str
+    card: dict
+    layers: tuple[IntLayer, ...]
+    sha256: bytes
+
+    @property
+    def depth(self) -> int:
+        return self.card["architecture"]["depth"]
+
+    @property
+    def width(self) -> int:
+        return self.card["architecture"]["width"]
+
+
+def _round(x: np.ndarray) -> np.ndarray:
+    return np.floor(x + 0.5)
+
+
+def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, dict]:
+    """(card, tensors) of the integer network that quantised training simulated."""
+    with torch.no_grad():
+        steps = [s.double().numpy() for s in net.in_steps()]
+        layers = net.layers()
+        out_steps = [layer.step.double().item() if layer.relu else None for layer in layers]
+        gains = np.array(fam.output_gains(), dtype=np.float64)
+        tensors, specs = {}, []
+        for i, (layer, step) in enumerate(zip(layers, steps, strict=True)):
+            w_eff = layer.weight.double().numpy() * step.reshape(1, -1, 1, 1)
+            s = np.maximum(np.abs(w_eff).reshape(len(w_eff), -1).max(1), 1e-12) / 127.0
+            w_int = _round(w_eff / s.reshape(-1, 1, 1, 1))
+            b_int = _round(layer.bias.double().numpy() / s)
+            ratio = s / out_steps[i] if layer.relu else s * gains
+            shift = int(math.floor(math.log2((2**MULT_BITS - 1) / ratio.max())))
+            mult = _round(ratio * 2.0**shift)
+            if not 1 <= shift <= 62:
+                raise ModelError(f"{name}: layer {i} needs shift {shift}, outside 1..62")
+            tensors[f"layer{i}.weight"] = w_int.astype(np.int8)
+            tensors[f"layer{i}.bias"] = b_int.astype(np.int32)
+            tensors[f"layer{i}.mult"] = mult.astype(np.int32)
+            lay = IntLayer(w_int.astype(np.int8), b_int.astype(np.int64), mult.astype(np.int64),
+                           shift, layer.relu)
+            specs.append({"kernel": list(w_int.shape[2:]), "relu": layer.relu, "shift": shift,
+                          "bound": lay.bound})
+    card = {
+        "format": FORMAT,
+        "version": VERSION,
+        "name": name,
+        "architecture": {"width": net.width, "hidden": net.hidden, "depth": net.depth,
+                         "left": 3, "outputs": fam.OUTPUTS},
+        "layers": specs,
+        **(extra or {}),
+    }
+    return card, tensors
+
+
+def canonical_bytes(card: dict, tensors: dict[str, np.ndarray]) -> bytes:
+    """The bytes whose SHA-256 is the model identity (independent of the file container)."""
+    card_json = json.dumps(card, sort_keys=True, separators=(",", ":"))
+    parts = [FORMAT.encode(), b"\n", card_json.encode()]
+    for key in sorted(tensors):
+        t = np.ascontiguousarray(tensors[key])
+        parts += [b"\n", key.encode(), str(t.dtype).encode(), str(list(t.shape)).encode()]
+        parts.append(t.astype(t.dtype.newbyteorder("<")).tobytes())
+    return b"".join(parts)
+
+
+def to_bytes(card: dict, tensors: dict[str, np.ndarray]) -> bytes:
+    """A model file's bytes."""
+    return save(tensors, metadata={"rowcast": json.dumps(card, sort_keys=True)})
+
+
+def save_model(path: Path, card: dict, tensors: dict[str, np.ndarray]) -> None:
+    """Write a model file atomically."""
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    tmp.write_bytes(to_bytes(card, tensors))
+    tmp.replace(path)
+
+
+def model_from_bytes(data: bytes, origin: str) -> IntModel:
+    """Parse and check a model file: structure, dtypes, and every layer's stored bound."""
+    try:
+        tensors = load(data)
+        header_len = int.from_bytes(data[:8], "little")
+        meta = json.loads(data[8 : 8 + header_len]).get("__metadata__", {})
+        card = json.loads(meta["rowcast"])
+    except (SafetensorError, ValueError, KeyError, TypeError) as exc:
+        raise ModelError(f"{origin}: not a rowcast model file ({exc.__class__.__name__})") from None
+    if card.get("format") != FORMAT or card.get("version") != VERSION:
+        raise ModelError(f"{origin}: not a rowcast model file of version {VERSION}")
+    try:
+        layers = tuple(_layer(tensors, i, spec) for i, spec in enumerate(card["layers"]))
+        arch = card["architecture"]
+        expected = arch["depth"] + 3
+        if len(layers) != expected or arch["outputs"] != fam.OUTPUTS:
+            raise ModelError(f"{origin}: architecture does not match this version of rowcast")
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ModelError(f"{origin}: malformed model card ({exc})") from None
+    for i, (layer, spec) in enumerate(zip(layers, card["layers"], strict=True)):
+        if layer.bound != spec["bound"] or layer.bound >= EXACT_F64:
+            raise ModelError(f"{origin}: layer {i} breaks its stored accumulator bound")
+    sha = hashlib.sha256(canonical_bytes(card, tensors)).digest()
+    return IntModel(card["name"], card, layers, sha)
+
+
+
+def _layer(tensors: dict[str, np.ndarray], i: int, spec: dict) -> IntLayer:
+    w, b, m = (tensors[f"layer{i}.{k}"] for k in ("weight", "bias", "mult"))
+    if w.dtype != np.int8 or b.dtype != np.int32 or m.dtype != np.int32 or w.ndim != 4:
+        raise ValueError(f"layer {i} has wrong dtypes")
+    if not (len(b) == len(m) == len(w)) or not 1 <= int(spec["shift"]) <= 62 or (m < 0).any():
+        raise ValueError(f"layer {i} has inconsistent shapes or shift")
+    return IntLayer(w, b.astype(np.int64), m.astype(np.int64), int(spec["shift"]),
+                    bool(spec["relu"]))
+
+
+def load_model(path: Path | None = None) -> IntModel:
+    """A model file, or the bundled default model when `path` is None."""
+    if path is None:
+        ref = resources.files("rowcast").joinpath(f"models/{DEFAULT_MODEL}")
+        return model_from_bytes(ref.read_bytes(), f"bundled model {DEFAULT_MODEL}")
+    try:
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise ModelError(f"{path}: cannot read model file ({exc.strerror})") from None
+    return model_from_bytes(data, str(path))

@@ -1,0 +1,298 @@
+"""Train the predictor on a directory of images: float first, then quantisation-aware.
+
+The schedule is set by wall-clock time so that a run fits a budget on a small machine:
+cosine learning rate over the whole budget; at `qat_at` of it, the activation steps are
+calibrated from a batch and the rest of the run trains the quantised network.
+Checkpoints (safetensors + JSON, no pickle) are written every few minutes and at the end.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+from PIL import Image
+from safetensors.torch import load_file, save_file
+
+from rowcast.network import Predictor, QConv, log2_likelihood, parameters_from_output
+
+PHOTO_SCALES = (2, 3, 4, 6, 8, 12, 16)
+CUTOUT_SCALES = (1, 2)
+IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp"}
+
+
+@dataclass
+class Config:
+    """Everything a training run depends on; written beside each checkpoint."""
+
+    data: str
+    out: str
+    minutes: float = 60.0
+    batch: int = 24
+    crop: int = 32
+    lr: float = 2e-3
+    qat_at: float = 0.35
+    gray_fraction: float = 0.15
+    cutout_fraction: float = 0.25
+    validation: tuple[str, ...] = ("grey.png", "volna.png")
+    width: int = 48
+    hidden: int = 64
+    depth: int = 4
+    seed: int = 0
+    threads: int = 2
+
+
+def _flatten_alpha(rgba: np.ndarray) -> np.ndarray:
+    """Composite an RGBA cut-out over mid-gray, in integers."""
+    rgb = rgba[..., :3].astype(np.int32)
+    a = rgba[..., 3:4].astype(np.int32)
+    return ((rgb * a + 128 * (255 - a) + 127) // 255).astype(np.uint8)
+
+
+def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.ndarray]:
+    """Box-filtered reductions of an image, as thumbnails of it would be made."""
+    out = []
+    for s in scales:
+        small = img.reduce(s) if s > 1 else img
+        if min(small.size) >= crop:
+            out.append(np.asarray(small))
+    return out
+
+
+def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
+    """(photo pyramids, cut-out pyramids, validation photos) from the training directory.
+
+    A sub-folder named `cutouts` holds RGBA cut-outs; everything else is a photograph.
+    The photographs named in `cfg.validation` are held out for validation.
+    """
+    photos, cutouts, held = [], [], []
+    for path in sorted(Path(cfg.data).rglob("*")):
+        if path.suffix.lower() not in IMAGE_SUFFIXES:
+            continue
+        with Image.open(path) as im:
+            if "cutouts" in path.parts:
+                rgb = Image.fromarray(_flatten_alpha(np.asarray(im.convert("RGBA"))))
+                cutouts += _pyramid(rgb, CUTOUT_SCALES, cfg.crop)
+            elif path.name in cfg.validation:
+                held.append(np.asarray(im.convert("RGB")))
+            else:
+                photos += _pyramid(im.convert("RGB"), PHOTO_SCALES, cfg.crop)
+    if not photos:
+        raise SystemExit(f"{cfg.data}: no training photographs found")
+    return photos, cutouts, held
+
+
+def sample_batch(rng: np.random.Generator, cfg: Config, photos, cutouts) -> tuple:
+    """Random crops (B,3,c,c) and a mask (B,3) that is 0 on channels a gray crop lacks."""
+    xs, masks = [], []
+    for _ in range(cfg.batch):
+        pool = cutouts if cutouts and rng.random() < cfg.cutout_fraction else photos
+        img = pool[rng.integers(len(pool))]
+        y = rng.integers(img.shape[0] - cfg.crop + 1)
+        x = rng.integers(img.shape[1] - cfg.crop + 1)
+        crop = img[y : y + cfg.crop, x : x + cfg.crop]
+        if rng.random() < 0.5:
+            crop = crop[:, ::-1]
+        if rng.random() < cfg.gray_fraction:
+            crop = np.repeat(gray_of(crop)[..., None], 3, axis=2)
+            masks.append([1.0, 0.0, 0.0])
+        else:
+            masks.append([1.0, 1.0, 1.0])
+        xs.append(np.ascontiguousarray(crop.transpose(2, 0, 1)))
+    return torch.from_numpy(np.stack(xs)).float(), torch.tensor(masks)
+
+
+def gray_of(rgb: np.ndarray) -> np.ndarray:
+    """ITU-R 601 luma in integers, as Pillow's convert('L') computes it."""
+    r, g, b = (rgb[..., i].astype(np.int32) for i in range(3))
+    return ((r * 19595 + g * 38470 + b * 7471 + 0x8000) >> 16).astype(np.uint8)
+
+
+def validation_set(held: list[np.ndarray], size: int = 64) -> torch.Tensor:
+    """Fixed 64-px thumbnails of the held-out photographs at three reductions."""
+    tiles = []
+    for arr in held:
+        img = Image.fromarray(arr)
+        for s in (4, 8, 16):
+            small = np.asarray(img.reduce(s))
+            h, w = small.shape[:2]
+            for y in range(0, h - size + 1, max(size, (h - size) // 2 or size)):
+                for x in range(0, w - size + 1, max(size, (w - size) // 3 or size)):
+                    tiles.append(small[y : y + size, x : x + size].transpose(2, 0, 1))
+    return torch.from_numpy(np.stack(tiles)).float()
+
+
+def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | None = None):
+    """Mean cross-entropy in bits per coded subpixel (a tensor, differentiable)."""
+    params = parameters_from_output(model(x), x, model.quant)
+    bits = -log2_likelihood(params, x)
+    if mask is None:
+        return bits.mean()
+    m = mask.view(*mask.shape, 1, 1).expand_as(bits)
+    return (bits * m).sum() / m.sum()
+
+
+@torch.no_grad()
+def evaluate(model: Predictor, tiles: torch.Tensor, quant: bool) -> float:
+    """Validation bits per subpixel in float or quantised mode."""
+    saved, model.quant = model.quant, quant
+    total = sum(bits_per_subpixel(model, tiles[i : i + 16]).item() * len(tiles[i : i + 16])
+                for i in range(0, len(tiles), 16))
+    model.quant = saved
+    return total / len(tiles)
+
+
+@torch.no_grad()
+def calibrate(model: Predictor, x: torch.Tensor) -> None:
+    """Set each activation step so that the 99.95th percentile maps to 255."""
+    seen: dict[QConv, torch.Tensor] = {}
+    hooks = [layer.register_forward_hook(lambda m, i, o: seen.__setitem__(m, o))
+             for layer in model.layers() if layer.relu]
+    model.quant = False
+    model(x)
+    for h in hooks:
+        h.remove()
+    for layer, out in seen.items():
+        hi = torch.quantile(out.flatten()[:200_000], 0.9995).clamp_min(1e-3)
+        layer.log_step.add_(torch.log(hi / 255.0))
+
+
+def save_checkpoint(model: Predictor, cfg: Config, state: dict, out: Path) -> None:
+    """Float weights in safetensors plus a JSON of config and progress (atomic)."""
+    out.mkdir(parents=True, exist_ok=True)
+    tmp = out / "checkpoint.safetensors.tmp"
+    save_file({k: v.contiguous() for k, v in model.state_dict().items()}, str(tmp))
+    tmp.replace(out / "checkpoint.safetensors")
+    meta = {"config": asdict(cfg), "state": state, "quant": model.quant}
+    (out / "checkpoint.json.tmp").write_text(json.dumps(meta, indent=2))
+    (out / "checkpoint.json.tmp").replace(out / "checkpoint.json")
+
+
+def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
+    """The model and metadata written by `save_checkpoint`."""
+    meta = json.loads((out / "checkpoint.json").read_text())
+    c = meta["config"]
+    model = Predictor(c["width"], c["hidden"], c["depth"])
+    model.load_state_dict(load_file(str(out / "checkpoint.safetensors")))
+    model.quant = meta["quant"]
+    return model, meta
+
+
+def train(cfg: Config, log=print) -> Predictor:
+    """Run the schedule of the module docstring; returns the trained model."""
+    torch.manual_seed(cfg.seed)
+    torch.set_num_threads(cfg.threads)
+    rng = np.random.default_rng(cfg.seed)
+    photos, cutouts, held = load_pools(cfg)
+    tiles = validation_set(held) if held else None
+    log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
+        f"{0 if tiles is None else len(tiles)} validation tiles")
+    model = Predictor(cfg.width, cfg.hidden, cfg.depth)
+    opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
+    out = Path(cfg.out)
+    budget = cfg.minutes * 60.0
+    start = time.monotonic()
+    last_save, step, ema = start, 0, None
+    history = []
+    while (elapsed := time.monotonic() - start) < budget:
+        progress = elapsed / budget
+        for group in opt.param_groups:
+            group["lr"] = cfg.lr * (0.02 + 0.98 * 0.5 * (1 + math.cos(math.pi * progress)))
+        x, mask = sample_batch(rng, cfg, photos, cutouts)
+        if not model.quant and progress >= cfg.qat_at:
+            calibrate(model, x)
+            model.quant = True
+            log(f"step {step}: quantisation-aware from here")
+        loss = bits_per_subpixel(model, x, mask)
+        opt.zero_grad()
+        loss.backward()
+        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+        opt.step()
+        step += 1
+        ema = loss.item() if ema is None else 0.98 * ema + 0.02 * loss.item()
+        if step % 100 == 0:
+            log(f"step {step} {elapsed / 60:.1f} min train {ema:.3f} bpsp")
+        if time.monotonic() - last_save > 300:
+            entry = {"step": step, "minutes": elapsed / 60, "train_bpsp": ema}
+            if tiles is not None:
+                entry["val_bpsp"] = evaluate(model, tiles, model.quant)
+            history.append(entry)
+            log(json.dumps(entry))
+            save_checkpoint(model, cfg, {"history": history}, out)
+            last_save = time.monotonic()
+    summary = {"steps": step, "minutes": (time.monotonic() - start) / 60, "train_bpsp": ema}
+    if tiles is not None:
+        summary["val_float_bpsp"] = evaluate(model, tiles, False)
+        summary["val_quant_bpsp"] = evaluate(model, tiles, True)
+    history.append(summary)
+    log(json.dumps(summary))
+    save_checkpoint(model, cfg, {"history": history, "summary": summary}, out)
+    return model
+
+
+def main(
+    data: str,
+    out: str,
+    minutes: float = 60.0,
+    batch: int = 24,
+    seed: int = 0,
+) -> None:
+    """Command line: python -m rowcast.train DATA OUT --minutes M."""
+    train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed),
+          log=lambda s: print(s, flush=True))
+
+
+if __name__ == "__main__":
+    import typer
+
+    typer.run(main)
+
+
+def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
+    """Cross-entropy of the exported integer model on tiles: what the coder will pay."""
+    from rowcast.codec import image_tables
+    from rowcast.entropy import cross_entropy_bits
+    from rowcast.predictor import Engine
+    from rowcast.quantize import model_from_bytes
+
+    engine = Engine(model_from_bytes(model_bytes, "exported model"))
+    x = tiles.numpy().astype(np.uint8)
+    bits = 0.0
+    for start in range(0, len(x), 8):
+        group = x[start : start + 8]
+        for out, rgb in zip(engine.parallel(group), group, strict=True):
+            bits += cross_entropy_bits(*image_tables(out, rgb, 3))
+    return bits / x.size
+
+
+def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
+    """Write the integer model of a finished run, with validation figures in its card."""
+    from rowcast.quantize import export, save_model, to_bytes
+
+    net, meta = load_checkpoint(run)
+    if not net.quant:
+        raise SystemExit(f"{run}: the run has not reached quantisation-aware training")
+    cfg = Config(**{**meta["config"], "validation": tuple(meta["config"]["validation"])})
+    _, _, held = load_pools(cfg)
+    tiles = validation_set(held)
+    history = meta["state"]["history"]
+    summary = {
+        "data": "shared/corpus: photos/ (box-reduced 2-16x) and cutouts/ over gray",
+        "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
+        "steps": history[-1].get("steps", history[-1].get("step")),
+        "minutes": round(history[-1]["minutes"], 1),
+        "command": f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}",
+        "val_float_bpsp": round(evaluate(net, tiles, False), 4),
+        "val_quant_bpsp": round(evaluate(net, tiles, True), 4),
+    }
+    card, tensors = export(net, name)
+    summary["val_integer_bpsp"] = round(integer_bits_per_subpixel(to_bytes(card, tensors),
+                                                                  tiles), 4)
+    card, tensors = export(net, name, {"training": summary})
+    save_model(dest, card, tensors)
+    return summary

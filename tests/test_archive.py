@@ -1,0 +1,428 @@
+"""Specification tests for archive format v1 (docs/FORMAT.md)."""
+
+from __future__ import annotations
+
+import hashlib
+import struct
+import unicodedata
+import zlib
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+from rowcast.archive import (
+    METHODS,
+    MODES,
+    ArchiveError,
+    Entry,
+    IndexEntry,
+    ModelIdentity,
+    normalise_path,
+    read_index,
+    read_payload,
+    write_archive,
+)
+
+MODEL = ModelIdentity("tiny-v1", hashlib.sha256(b"model bytes").digest())
+TRAILER = struct.Struct("<QQI4s")
+RECORD_FIELDS = struct.Struct("<BBII32sQQ")
+
+
+def stored(path: str, mode: str, width: int, height: int, fill: int) -> Entry:
+    """Build a stored entry whose raw planes are `fill` repeated."""
+    planes = {"L": 1, "RGB": 3}[mode]
+    payload = bytes([fill % 256]) * (width * height * planes)
+    return Entry(path, mode, width, height, "stored", hashlib.sha256(payload).digest(), payload)
+
+
+def coded(path: str, payload: bytes) -> Entry:
+    """Build a model-coded entry with an arbitrary payload of whole 32-bit words."""
+    return Entry(path, "RGB", 5, 4, "model", hashlib.sha256(path.encode()).digest(), payload)
+
+
+SAMPLE = [
+    stored("cats/tabby.png", "RGB", 3, 2, 7),
+    stored("gray/ночь.png", "L", 4, 5, 200),
+    coded("empty/nothing.png", b""),
+    coded("日本/写真.png", bytes(range(16))),
+]
+
+
+def write_sample(tmp_path: Path, entries: list[Entry] = SAMPLE) -> Path:
+    """Write `entries` to a fresh archive in tmp_path and return its path."""
+    dest = tmp_path / "sample.rca"
+    write_archive(dest, MODEL, entries)
+    return dest
+
+
+def read_everything(src: Path) -> None:
+    """Read the index and every payload, as a reader extracting all entries would."""
+    _, entries = read_index(src)
+    for entry in entries:
+        read_payload(src, entry)
+
+
+def locate_index(data: bytes) -> tuple[int, int]:
+    """Return (offset, length) of the index as recorded in the trailer."""
+    offset, length, _, _ = TRAILER.unpack(data[-TRAILER.size :])
+    return offset, length
+
+
+def reseal(data: bytes, index: bytes) -> bytes:
+    """Replace the index with `index` and rewrite the trailer so its CRC and length match."""
+    offset, _ = locate_index(data)
+    mark = data[-4:]
+    return data[:offset] + index + TRAILER.pack(offset, len(index), zlib.crc32(index), mark)
+
+
+def first_record_fields_at(data: bytes) -> int:
+    """Byte position, inside the index, of the first record's fixed fields (after its path)."""
+    offset, _ = locate_index(data)
+    (path_length,) = struct.unpack_from("<H", data, offset + 4)
+    return 4 + 2 + path_length
+
+
+def single_entry_archive(tmp_path: Path) -> tuple[Path, bytes]:
+    """Write an archive holding one stored entry; return its path and bytes."""
+    dest = write_sample(tmp_path, [stored("aa/x.png", "L", 2, 2, 1)])
+    return dest, dest.read_bytes()
+
+
+def test_modes_and_methods_have_the_agreed_codes() -> None:
+    """Mode and method codes are part of the format and must not drift."""
+    assert MODES["L"] == 1
+    assert MODES["RGB"] == 2
+    assert METHODS == {"stored": 0, "model": 1}
+
+
+def test_round_trip_keeps_every_field_and_payload(tmp_path: Path) -> None:
+    """Everything written comes back from the index and payload reads, in order."""
+    dest = tmp_path / "a.rca"
+    size = write_archive(dest, MODEL, iter(SAMPLE))
+    assert size == dest.stat().st_size
+    model, entries = read_index(dest)
+    assert model == MODEL
+    assert [e.path for e in entries] == [e.path for e in SAMPLE]
+    for written, listed in zip(SAMPLE, entries, strict=True):
+        assert (listed.mode, listed.width, listed.height) == (
+            written.mode,
+            written.width,
+            written.height,
+        )
+        assert listed.method == written.method
+        assert listed.checksum == written.checksum
+        assert listed.length == len(written.payload)
+        assert read_payload(dest, listed) == written.payload
+
+
+def test_empty_archive_round_trips(tmp_path: Path) -> None:
+    """An archive with no entries is valid and lists nothing."""
+    dest = write_sample(tmp_path, [])
+    assert read_index(dest) == (MODEL, [])
+
+
+def test_one_payload_is_read_alone_by_seeking(tmp_path: Path) -> None:
+    """An index entry's offset and length locate exactly its payload bytes."""
+    dest = write_sample(tmp_path)
+    _, entries = read_index(dest)
+    wanted = entries[3]
+    raw = dest.read_bytes()
+    assert raw[wanted.offset : wanted.offset + wanted.length] == SAMPLE[3].payload
+    assert read_payload(dest, wanted) == SAMPLE[3].payload
+
+
+def test_paths_are_stored_normalised(tmp_path: Path) -> None:
+    """The writer stores the canonical (NFC, POSIX) form of each path."""
+    decomposed = unicodedata.normalize("NFD", "café/./b.png")
+    dest = write_sample(tmp_path, [stored(decomposed, "L", 1, 1, 0)])
+    _, entries = read_index(dest)
+    assert entries[0].path == unicodedata.normalize("NFC", "café/b.png")
+
+
+def test_failure_mid_iteration_leaves_no_file_behind(tmp_path: Path) -> None:
+    """An exception from the entry source leaves neither dest nor a temporary file."""
+
+    def entries() -> Iterator[Entry]:
+        yield SAMPLE[0]
+        yield SAMPLE[1]
+        raise RuntimeError("source image vanished")
+
+    dest = tmp_path / "out.rca"
+    with pytest.raises(RuntimeError, match="vanished"):
+        write_archive(dest, MODEL, entries())
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_invalid_entry_mid_stream_leaves_no_file_behind(tmp_path: Path) -> None:
+    """A refused entry after some were written also leaves nothing behind."""
+    dest = tmp_path / "out.rca"
+    with pytest.raises(ArchiveError, match="duplicate path"):
+        write_archive(dest, MODEL, [SAMPLE[0], SAMPLE[1], SAMPLE[0]])
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_failed_overwrite_keeps_the_old_archive(tmp_path: Path) -> None:
+    """A failed forced write leaves the existing archive untouched."""
+    dest = write_sample(tmp_path)
+    before = dest.read_bytes()
+    with pytest.raises(ArchiveError):
+        write_archive(dest, MODEL, [stored("/abs.png", "L", 1, 1, 0)], force=True)
+    assert dest.read_bytes() == before
+    assert list(tmp_path.iterdir()) == [dest]
+
+
+def test_existing_destination_is_refused_without_force(tmp_path: Path) -> None:
+    """An existing destination is never overwritten without force."""
+    dest = tmp_path / "keep.rca"
+    dest.write_bytes(b"precious")
+    with pytest.raises(ArchiveError, match=r"keep\.rca: already exists"):
+        write_archive(dest, MODEL, SAMPLE)
+    assert dest.read_bytes() == b"precious"
+
+
+def test_force_overwrites_the_destination(tmp_path: Path) -> None:
+    """With force, the destination is replaced by the new archive."""
+    dest = tmp_path / "keep.rca"
+    dest.write_bytes(b"stale")
+    write_archive(dest, MODEL, SAMPLE, force=True)
+    assert len(read_index(dest)[1]) == len(SAMPLE)
+
+
+@pytest.mark.parametrize(
+    ("given", "expected"),
+    [
+        ("a/b.png", "a/b.png"),
+        ("./a//b.png", "a/b.png"),
+        ("a/./b/", "a/b"),
+        (unicodedata.normalize("NFD", "é.png"), "\u00e9.png"),
+    ],
+)
+def test_normalise_path_accepts_relative_paths(given: str, expected: str) -> None:
+    """Relative paths are reduced to their canonical form."""
+    assert normalise_path(given) == expected
+
+
+@pytest.mark.parametrize(
+    "bad",
+    ["/abs.png", "../x.png", "a/../../x", "a/../b", "", ".", "a\\b", "a\x00b", "a\nb", "C:/x"],
+)
+def test_normalise_path_refuses_unsafe_paths(bad: str) -> None:
+    """Unsafe or empty paths are refused with a one-line message naming them."""
+    with pytest.raises(ArchiveError) as caught:
+        normalise_path(bad)
+    assert caught.value.args[0].startswith(repr(bad))
+    assert "\n" not in caught.value.args[0]
+
+
+def test_paths_equal_after_normalisation_are_duplicates(tmp_path: Path) -> None:
+    """Two spellings of one canonical path count as a duplicate."""
+    with pytest.raises(ArchiveError, match="duplicate path 'a/b.png'"):
+        write_sample(
+            tmp_path, [stored("a/b.png", "L", 1, 1, 0), stored("./a//b.png", "L", 1, 1, 0)]
+        )
+
+
+@pytest.mark.parametrize(
+    ("entry", "reason"),
+    [
+        (stored("../x.png", "L", 1, 1, 0), r"'\.\.' component"),
+        (Entry("x", "CMYK", 1, 1, "stored", bytes(32), b"\0"), "unknown mode"),
+        (Entry("x", "L", 1, 1, "zip", bytes(32), b"\0"), "unknown method"),
+        (Entry("x", "L", 0, 1, "stored", bytes(32), b""), "width 0"),
+        (Entry("x", "L", 1, -1, "stored", bytes(32), b""), "height -1"),
+        (Entry("x", "L", 1, 1, "stored", bytes(31), b"\0"), "checksum is 31 bytes"),
+        (Entry("x", "RGB", 2, 1, "stored", bytes(32), b"\0" * 5), "expected 6"),
+        (Entry("x", "RGB", 2, 1, "model", bytes(32), b"\0" * 5), "32-bit words"),
+    ],
+)
+def test_writer_refuses_invalid_entries(tmp_path: Path, entry: Entry, reason: str) -> None:
+    """Each invalid entry field is refused with its reason and no file is left."""
+    with pytest.raises(ArchiveError, match=reason):
+        write_sample(tmp_path, [entry])
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize(
+    ("model", "reason"),
+    [
+        (ModelIdentity("m" * 256, bytes(32)), "longer than 255"),
+        (ModelIdentity("m", bytes(31)), "SHA-256 is 31 bytes"),
+    ],
+)
+def test_writer_refuses_invalid_model_identity(
+    tmp_path: Path, model: ModelIdentity, reason: str
+) -> None:
+    """A model name over 255 bytes or a digest of the wrong size is refused."""
+    with pytest.raises(ArchiveError, match=reason):
+        write_archive(tmp_path / "m.rca", model, SAMPLE)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_every_truncation_is_reported_as_archive_error(tmp_path: Path) -> None:
+    """Cutting the file at any length gives ArchiveError naming the file."""
+    data = write_sample(tmp_path).read_bytes()
+    cut = tmp_path / "cut.rca"
+    for length in range(len(data)):
+        cut.write_bytes(data[:length])
+        with pytest.raises(ArchiveError) as caught:
+            read_index(cut)
+        assert caught.value.args[0].startswith(f"{cut}: ")
+
+
+def test_payload_read_after_truncation_fails_cleanly(tmp_path: Path) -> None:
+    """A payload read from a truncated archive is refused, not short."""
+    dest = write_sample(tmp_path)
+    _, entries = read_index(dest)
+    dest.write_bytes(dest.read_bytes()[:-1])
+    with pytest.raises(ArchiveError, match="truncated"):
+        read_payload(dest, entries[0])
+
+
+def test_flipped_index_byte_fails_the_crc(tmp_path: Path) -> None:
+    """Damage inside the index is caught by its CRC32."""
+    dest = write_sample(tmp_path)
+    data = bytearray(dest.read_bytes())
+    offset, length = locate_index(bytes(data))
+    data[offset + length // 2] ^= 0x10
+    dest.write_bytes(bytes(data))
+    with pytest.raises(ArchiveError, match="index CRC mismatch"):
+        read_index(dest)
+
+
+def test_flipped_model_name_byte_fails_the_header_crc(tmp_path: Path) -> None:
+    """Damage to the model identity is caught by the header CRC32."""
+    dest = write_sample(tmp_path)
+    data = bytearray(dest.read_bytes())
+    data[45] ^= 0x01  # first byte of the model name
+    dest.write_bytes(bytes(data))
+    with pytest.raises(ArchiveError, match="header CRC mismatch"):
+        read_index(dest)
+
+
+def test_wrong_magic_is_not_an_archive(tmp_path: Path) -> None:
+    """A file without our magic bytes is refused as not an archive."""
+    dest = write_sample(tmp_path)
+    dest.write_bytes(b"NOTOURS!" + dest.read_bytes()[8:])
+    with pytest.raises(ArchiveError, match=r"^.*sample\.rca: not a rowcast archive$"):
+        read_index(dest)
+
+
+def test_unknown_version_is_refused_by_number(tmp_path: Path) -> None:
+    """Readers refuse other format versions and say which version they found."""
+    dest = write_sample(tmp_path)
+    data = dest.read_bytes()
+    dest.write_bytes(data[:8] + struct.pack("<H", 7) + data[10:])
+    with pytest.raises(ArchiveError, match=f"^{dest}: unsupported format version 7"):
+        read_index(dest)
+    with pytest.raises(ArchiveError, match="unsupported format version 7"):
+        read_payload(dest, IndexEntry("x", "L", 1, 1, "stored", bytes(32), 60, 1))
+
+
+def test_nonzero_header_flags_are_refused(tmp_path: Path) -> None:
+    """Flags this version does not define are refused, even with a valid CRC."""
+    dest = write_sample(tmp_path)
+    data = bytearray(dest.read_bytes())
+    data[10] = 1
+    end = 45 + len(MODEL.name.encode())
+    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
+    dest.write_bytes(bytes(data))
+    with pytest.raises(ArchiveError, match="unsupported header flags 0x0001"):
+        read_index(dest)
+
+
+def test_crafted_length_past_the_payload_area_is_refused(tmp_path: Path) -> None:
+    """A payload length reaching beyond the payload area is refused."""
+    dest, data = single_entry_archive(tmp_path)
+    offset, length = locate_index(data)
+    index = bytearray(data[offset : offset + length])
+    fields = first_record_fields_at(data)
+    values = list(RECORD_FIELDS.unpack_from(index, fields))
+    values[1] = METHODS["model"]
+    values[6] = 2**40
+    RECORD_FIELDS.pack_into(index, fields, *values)
+    dest.write_bytes(reseal(data, bytes(index)))
+    with pytest.raises(ArchiveError, match="past the payload area"):
+        read_index(dest)
+
+
+def test_payload_outside_the_payload_area_is_not_read(tmp_path: Path) -> None:
+    """read_payload refuses offsets and lengths outside the payload area."""
+    dest = write_sample(tmp_path)
+    _, entries = read_index(dest)
+    size = dest.stat().st_size
+    for offset, length in [(size - 4, 8), (0, 4), (entries[0].offset, -1), (size, 0)]:
+        forged = IndexEntry("x", "RGB", 1, 1, "model", bytes(32), offset, length)
+        with pytest.raises(ArchiveError, match="outside the payload area"):
+            read_payload(dest, forged)
+
+
+@pytest.mark.parametrize(
+    ("path", "reason"), [(b"../x.png", "'..' component"), (b"/a/x.png", "absolute path")]
+)
+def test_crafted_unsafe_path_in_index_is_refused(tmp_path: Path, path: bytes, reason: str) -> None:
+    """Unsafe paths in a well-sealed index are refused by the reader."""
+    dest, data = single_entry_archive(tmp_path)
+    offset, length = locate_index(data)
+    index = data[offset : offset + length].replace(b"aa/x.png", path)
+    dest.write_bytes(reseal(data, index))
+    with pytest.raises(ArchiveError, match=reason):
+        read_index(dest)
+
+
+def test_crafted_non_canonical_path_in_index_is_refused(tmp_path: Path) -> None:
+    """Stored paths must already be canonical."""
+    dest, data = single_entry_archive(tmp_path)
+    offset, length = locate_index(data)
+    index = data[offset : offset + length].replace(b"aa/x.png", b"a//x.png")
+    dest.write_bytes(reseal(data, index))
+    with pytest.raises(ArchiveError, match="not in canonical form"):
+        read_index(dest)
+
+
+@pytest.mark.parametrize(
+    ("field", "code", "reason"), [(0, 9, "unknown mode code 9"), (1, 5, "method code 5")]
+)
+def test_crafted_unknown_codes_are_refused(
+    tmp_path: Path, field: int, code: int, reason: str
+) -> None:
+    """Mode and method codes this version does not define are refused."""
+    dest, data = single_entry_archive(tmp_path)
+    offset, length = locate_index(data)
+    index = bytearray(data[offset : offset + length])
+    index[first_record_fields_at(data) + field] = code
+    dest.write_bytes(reseal(data, bytes(index)))
+    with pytest.raises(ArchiveError, match=reason):
+        read_index(dest)
+
+
+def test_absurd_entry_count_is_refused_before_parsing(tmp_path: Path) -> None:
+    """An entry count too large for the index is refused up front."""
+    dest, data = single_entry_archive(tmp_path)
+    offset, length = locate_index(data)
+    index = struct.pack("<I", 2**32 - 1) + data[offset + 4 : offset + length]
+    dest.write_bytes(reseal(data, index))
+    with pytest.raises(ArchiveError, match="entry count 4294967295 cannot fit"):
+        read_index(dest)
+
+
+def test_every_single_byte_flip_is_caught_or_harmless(tmp_path: Path) -> None:
+    """Any single damaged byte yields ArchiveError or a clean read, never a crash."""
+    original = write_sample(tmp_path, SAMPLE[1:4]).read_bytes()
+    damaged = tmp_path / "damaged.rca"
+    outcomes = {"read": 0, "refused": 0}
+    for position in range(len(original)):
+        for mask in (0x01, 0x80, 0xFF):
+            data = bytearray(original)
+            data[position] ^= mask
+            damaged.write_bytes(bytes(data))
+            try:
+                read_everything(damaged)
+            except ArchiveError as error:
+                assert error.args[0].startswith(f"{damaged}: ")
+                assert "\n" not in error.args[0]
+                outcomes["refused"] += 1
+            else:
+                outcomes["read"] += 1
+    assert outcomes["refused"] > 0
+    assert outcomes["read"] > 0  # payload bytes carry no CRC here; the pixel checksum guards them

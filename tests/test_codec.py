@@ -1,0 +1,115 @@
+"""Specification of coding: exact round trips, the cross-entropy floor, and exactness across
+threads, batch groupings and the two inference paths."""
+
+import numpy as np
+import pytest
+import torch
+
+from rowcast.codec import channel_params, decode_batch, encode_batch, image_tables
+from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails
+from rowcast.planes import as_rgb
+from rowcast.predictor import Engine, conv_reference
+from rowcast.tables import logistic_tables
+
+
+def round_trip(engine, images):
+    coded = encode_batch(engine, images)
+    planes, h, w = images[0].shape
+    decoded = decode_batch(engine, [c.payload for c in coded], planes, h, w)
+    return coded, decoded
+
+
+EDGE_SHAPES = [(1, 1), (1, 17), (13, 1), (7, 11), (16, 16)]
+
+
+@pytest.mark.parametrize("planes", [1, 3])
+@pytest.mark.parametrize("shape", EDGE_SHAPES)
+def test_edge_sizes_round_trip_exactly(tiny_engine, planes, shape):
+    """1x1, single rows and columns, odd sizes: every pixel comes back."""
+    rng = np.random.default_rng(shape[0] * 100 + shape[1])
+    images = [rng.integers(0, 256, (planes, *shape), dtype=np.uint8),
+              np.full((planes, *shape), 255, np.uint8)]
+    _, decoded = round_trip(tiny_engine, images)
+    assert np.array_equal(decoded, np.stack(images))
+
+
+@pytest.mark.parametrize("value", [0, 255, 97])
+def test_constant_images_round_trip_and_cost_little(default_engine, value):
+    """A constant image is coded exactly and far below 1 bit per subpixel."""
+    image = np.full((3, 24, 24), value, np.uint8)
+    coded, decoded = round_trip(default_engine, [image])
+    assert np.array_equal(decoded[0], image)
+    assert 8 * len(coded[0].payload) / image.size < 1.0
+
+
+@pytest.mark.parametrize("size", [32, 64])
+def test_heldout_thumbnails_round_trip_exactly(default_engine, size):
+    """Thumbnails of scikit-image's bundled photographs (RGB and gray) decode bit-exactly."""
+    rgb = [p for _, p in thumbnails(RGB_PHOTOS[:3], "RGB", size)]
+    gray = [p for _, p in thumbnails(GRAY_PHOTOS[:3], "L", size)]
+    for images in (rgb, gray):
+        _, decoded = round_trip(default_engine, images)
+        assert np.array_equal(decoded, np.stack(images))
+
+
+def test_payload_is_within_half_a_percent_of_the_cross_entropy(default_engine, rgb64, gray64):
+    """Source-coding floor: a range coder pays at most a hair over the model's cross-entropy,
+    and never less than it (less would mean the stated probabilities were not the coded ones)."""
+    for c in encode_batch(default_engine, rgb64) + encode_batch(default_engine, gray64):
+        floor = c.cross_entropy / 8
+        assert floor - 4 <= len(c.payload) <= 1.005 * floor + 16
+
+
+def test_encoder_and_decoder_tables_are_identical(default_engine, rgb64):
+    """The parallel pass (encoder) and the incremental pass (decoder) give the same integers,
+    hence the same frequency tables, for every subpixel of real images."""
+    images = np.stack(rgb64[:4])
+    parallel = default_engine.parallel(images)
+    b, _, h, w = images.shape
+    state = default_engine.start(b, w)
+    for y in range(h):
+        acc_rows = default_engine.next_row(state, images[:, :, y - 1] if y else None)
+        for x in range(w):
+            out = default_engine.pixel(acc_rows, images[:, :, y], x)
+            assert np.array_equal(out, parallel[:, y, x]), (y, x)
+    known = images[0].reshape(3, -1).T
+    flat = parallel[0].reshape(-1, parallel.shape[-1])
+    _, tables = image_tables(parallel[0], images[0], 3)
+    for c in range(3):
+        assert np.array_equal(tables[c::3], logistic_tables(*channel_params(flat, c, known)))
+
+
+def test_same_bytes_with_one_or_two_threads_and_any_grouping(default_engine, rgb64):
+    """Thread count and batch grouping change nothing: identical payloads and pixels."""
+    before = torch.get_num_threads()
+    try:
+        torch.set_num_threads(1)
+        one = [c.payload for c in encode_batch(default_engine, rgb64)]
+        torch.set_num_threads(2)
+        two = [c.payload for c in encode_batch(default_engine, rgb64)]
+        singly = [encode_batch(default_engine, [im])[0].payload for im in rgb64]
+    finally:
+        torch.set_num_threads(before)
+    assert one == two == singly
+    together = decode_batch(default_engine, one[:5], 3, 64, 64)
+    apart = np.concatenate([decode_batch(default_engine, [p], 3, 64, 64) for p in one[:2]])
+    assert np.array_equal(together[:2], apart)
+    assert np.array_equal(together, np.stack(rgb64[:5]))
+
+
+def test_reference_kernels_agree_with_fast_kernels(default_engine, rgb64):
+    """The int64 reference path (the fallback when the load-time self-test fails) computes
+    exactly what the fast float kernels compute."""
+    images = np.stack(rgb64[:2])[:, :, :20, :24]
+    reference = Engine(default_engine.model)
+    reference.conv = conv_reference
+    assert np.array_equal(default_engine.parallel(images), reference.parallel(images))
+
+
+def test_gray_images_are_coded_as_one_plane(default_engine, gray64):
+    """Gray costs one plane: the tables cover width*height subpixels, not three times that."""
+    image = gray64[0]
+    out = default_engine.parallel(as_rgb(image)[None])[0]
+    symbols, tables = image_tables(out, as_rgb(image), 1)
+    assert len(symbols) == len(tables) == image.size
+    assert np.array_equal(symbols, image.reshape(-1))

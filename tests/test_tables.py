@@ -1,0 +1,75 @@
+"""Specification of the integer tables that feed the range coder."""
+
+import numpy as np
+
+from rowcast import entropy
+from rowcast import family as fam
+from rowcast.tables import (
+    CDF_ONE,
+    D_MIN,
+    LEVELS,
+    WIDTH,
+    exact_logistic_cdf,
+    logistic_cdf,
+    logistic_tables,
+)
+
+
+def test_committed_cdf_table_is_the_exact_decimal_logistic():
+    """The shipped table equals a correctly rounded recomputation (Python's decimal module),
+    checked on every level at a deterministic spread of distances including both ends."""
+    table = logistic_cdf()
+    assert table.shape == (LEVELS, WIDTH)
+    columns = sorted(set(range(0, WIDTH, 37)) | {0, WIDTH // 2, WIDTH - 1})
+    for level in range(LEVELS):
+        for col in columns:
+            assert table[level, col] == exact_logistic_cdf(level, col + D_MIN), (level, col)
+
+
+def test_every_table_sums_to_the_same_total_and_keeps_every_value_codable():
+    """Counts are >= 1 for all 256 values and sum to exactly 2**16 + 256, over the whole grid."""
+    mu = np.repeat(np.arange(fam.MU_LO, fam.MU_HI + 1), LEVELS)
+    ls = np.tile(np.arange(fam.LS_LO, fam.LS_HI + 1), fam.MU_HI - fam.MU_LO + 1)
+    tables = logistic_tables(mu, ls)
+    assert tables.min() >= 1
+    assert np.all(tables.sum(axis=1, dtype=np.float64) == CDF_ONE + 256)
+    assert np.all(tables == np.round(tables))
+
+
+def test_a_sharp_logistic_puts_almost_all_mass_on_its_mean():
+    """With the smallest scale and the mean on value 100, value 100 gets > 99% of the mass."""
+    table = logistic_tables(np.array([400]), np.array([fam.LS_LO]))[0]
+    assert table[100] / table.sum() > 0.99
+    assert table.argmax() == 100
+
+
+def test_a_uniform_model_costs_exactly_eight_bits_per_subpixel():
+    """Information theory: 256 equiprobable values cost log2(256) = 8 bits each; the coder's
+    output is within one 32-bit word of that."""
+    rng = np.random.default_rng(5)
+    symbols = rng.integers(0, 256, 4000)
+    tables = np.ones((4000, 256), np.float32)
+    assert entropy.cross_entropy_bits(symbols, tables) == 8 * 4000
+    coder = entropy.encoder()
+    entropy.encode(coder, symbols, tables)
+    assert abs(len(entropy.finish(coder)) - 4000) <= 8
+
+
+def test_code_length_is_bounded_below_by_cross_entropy():
+    """Shannon's bound: no payload is shorter than the model's cross-entropy (less a word of
+    rounding), and a range coder gets within 0.5% of it."""
+    rng = np.random.default_rng(6)
+    mu = rng.integers(fam.MU_LO, fam.MU_HI + 1, 5000)
+    ls = rng.integers(fam.LS_LO, fam.LS_HI + 1, 5000)
+    tables = logistic_tables(mu, ls)
+    p = tables.astype(np.float64)
+    p /= p.sum(axis=1, keepdims=True)
+    symbols = np.array([rng.choice(256, p=row) for row in p])
+    bits = entropy.cross_entropy_bits(symbols, tables)
+    coder = entropy.encoder()
+    entropy.encode(coder, symbols, tables)
+    payload = entropy.finish(coder)
+    decoder = entropy.decoder(payload)
+    decoded = [decoder.decode(entropy.FAMILY, tables[i : i + 1])[0] for i in range(len(symbols))]
+    assert decoded == list(symbols)
+    assert bits - 32 <= 8 * len(payload) <= 1.005 * bits + 64
