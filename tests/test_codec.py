@@ -1,12 +1,16 @@
 """Specification of coding: exact round trips, the cross-entropy floor, and exactness across
 threads, batch groupings and the two inference paths."""
 
+import io
+
 import numpy as np
 import pytest
 import torch
+from PIL import Image
 
+import rowcast
 from rowcast.codec import channel_params, decode_batch, encode_batch, image_tables
-from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails
+from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine, conv_reference
 from rowcast.tables import logistic_tables
@@ -113,3 +117,29 @@ def test_gray_images_are_coded_as_one_plane(default_engine, gray64):
     symbols, tables = image_tables(out, as_rgb(image), 1)
     assert len(symbols) == len(tables) == image.size
     assert np.array_equal(symbols, image.reshape(-1))
+
+
+def test_uniform_noise_is_stored_and_never_grows_beyond_raw(tmp_path):
+    """Incompressible input falls back to storage: the entry is the raw pixels, and the whole
+    archive is raw size plus a fixed overhead of header, index and trailer."""
+    rng = np.random.default_rng(9)
+    noise = rng.integers(0, 256, (64, 64, 3), dtype=np.uint8)
+    Image.fromarray(noise).save(tmp_path / "noise.png")
+    summary = rowcast.compress([tmp_path / "noise.png"], tmp_path / "n.rowcast")
+    (entry,) = summary.entries
+    assert entry["method"] == "stored" and entry["bytes"] == noise.size
+    assert summary.archive_bytes <= noise.size + 200
+
+
+def test_archive_is_smaller_than_png_on_heldout_photo_thumbnails(tmp_path, rgb64):
+    """External reference: the sum of Pillow's PNG sizes (optimize=True, zlib) for the same
+    64-px thumbnails of scikit-image's photographs; the whole archive must be smaller."""
+    folder = tmp_path / "thumbs"
+    paths = write_pngs([(f"t{i}", p) for i, p in enumerate(rgb64)], folder, "RGB")
+    png_total = 0
+    for path in paths:
+        buf = io.BytesIO()
+        Image.open(path).save(buf, format="PNG", optimize=True)
+        png_total += len(buf.getvalue())
+    summary = rowcast.compress([folder], tmp_path / "t.rowcast")
+    assert summary.archive_bytes < png_total

@@ -179,9 +179,20 @@ def verify(
 
 
 def main() -> None:
-    """Console entry point."""
+    """Console entry point: usage errors and bugs also end as one line on stderr."""
     try:
-        app()
-    except Exception as exc:  # a bug, not a user error: still one line, never a traceback
-        print(f"rowcast: internal error: {exc.__class__.__name__}: {exc}", file=sys.stderr)
-        sys.exit(1)
+        code = app(standalone_mode=False)
+    except typer.Abort:
+        print("rowcast: interrupted; nothing was written", file=sys.stderr)
+        code = 130
+    except OSError as exc:
+        print(f"rowcast: error: {exc.filename or ''}: {exc.strerror or exc}", file=sys.stderr)
+        code = 1
+    except Exception as exc:
+        if hasattr(exc, "format_message") and hasattr(exc, "exit_code"):  # a usage error
+            print(f"rowcast: error: {exc.format_message()} (see rowcast --help)", file=sys.stderr)
+            code = exc.exit_code
+        else:  # a bug, not a user error: still one line, never a traceback
+            print(f"rowcast: internal error: {exc.__class__.__name__}: {exc}", file=sys.stderr)
+            code = 1
+    sys.exit(code or 0)

@@ -18,8 +18,8 @@ from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
 from rowcast.tables import logistic_tables
 
-CHUNK = 8192  # subpixels per encoder call: bounds the memory of the tables
-PASS_PIXELS = 1 << 17  # pixels per parallel pass: bounds the memory of activations
+CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
+PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
 
 
 @dataclass(frozen=True)
