@@ -9,11 +9,11 @@ import torch
 from PIL import Image
 
 import rowcast
-from rowcast.codec import channel_params, decode_batch, encode_batch, image_tables
+from rowcast import network
+from rowcast.codec import base_prediction, decode_batch, encode_batch, image_tables
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine, conv_reference
-from rowcast.tables import logistic_tables
 
 
 def round_trip(engine, images):
@@ -67,20 +67,29 @@ def test_payload_is_within_half_a_percent_of_the_cross_entropy(default_engine, r
 def test_encoder_and_decoder_tables_are_identical(default_engine, rgb64):
     """The parallel pass (encoder) and the incremental pass (decoder) give the same integers,
     hence the same frequency tables, for every subpixel of real images."""
-    images = np.stack(rgb64[:4])
-    parallel = default_engine.parallel(images)
-    b, _, h, w = images.shape
-    state = default_engine.start(b, w)
-    for y in range(h):
-        acc_rows = default_engine.next_row(state, images[:, :, y - 1] if y else None)
-        for x in range(w):
-            out = default_engine.pixel(acc_rows, images[:, :, y], x)
-            assert np.array_equal(out, parallel[:, y, x]), (y, x)
-    known = images[0].reshape(3, -1).T
-    flat = parallel[0].reshape(-1, parallel.shape[-1])
-    _, tables = image_tables(parallel[0], images[0], 3)
-    for c in range(3):
-        assert np.array_equal(tables[c::3], logistic_tables(*channel_params(flat, c, known)))
+    images = rgb64[:3]
+    coded = encode_batch(default_engine, images)
+    parallel = default_engine.parallel(np.stack(images))
+    expected = [image_tables(out, im, base_prediction(im), 3)[1].reshape(64, 64, 3, 256)
+                for out, im in zip(parallel, images, strict=True)]
+    seen = []
+
+    def check(y, x, c, tables):
+        for b in range(len(images)):
+            if not np.array_equal(tables[b], expected[b][y, x, c]):
+                seen.append((b, y, x, c))
+
+    decode_batch(default_engine, [c.payload for c in coded], 3, 64, 64, trace=check)
+    assert seen == []
+
+
+def test_integer_base_prediction_matches_the_training_one(rgb64):
+    """The base prediction that training used (torch) and the coder's (numpy integers) agree
+    on every pixel, edges included."""
+    images = np.stack(rgb64[:2])[:, :, :9, :13]
+    ours = base_prediction(images)
+    theirs = network.base_prediction(torch.from_numpy(images).float()).numpy()
+    assert np.array_equal(ours, theirs)
 
 
 def test_same_bytes_with_one_or_two_threads_and_any_grouping(default_engine, rgb64):
@@ -114,7 +123,7 @@ def test_gray_images_are_coded_as_one_plane(default_engine, gray64):
     """Gray costs one plane: the tables cover width*height subpixels, not three times that."""
     image = gray64[0]
     out = default_engine.parallel(as_rgb(image)[None])[0]
-    symbols, tables = image_tables(out, as_rgb(image), 1)
+    symbols, tables = image_tables(out, as_rgb(image), base_prediction(as_rgb(image)), 1)
     assert len(symbols) == len(tables) == image.size
     assert np.array_equal(symbols, image.reshape(-1))
 

@@ -30,30 +30,52 @@ class Coded:
     cross_entropy: float
 
 
-def channel_params(out: np.ndarray, c: int, known: np.ndarray) -> tuple:
+def base_prediction(img: np.ndarray) -> np.ndarray:
+    """The family's integer base prediction for every pixel of img (..., 3, H, W), int64.
+
+    Median of left, above and left + above - above-left; the left pixel on the top row, the
+    one above in the first column, 128 at the origin (as `network.base_prediction`).
+    """
+    x = img.astype(np.int64)
+    left, up, corner = np.zeros_like(x), np.zeros_like(x), np.zeros_like(x)
+    left[..., 1:] = x[..., :-1]
+    up[..., 1:, :] = x[..., :-1, :]
+    corner[..., 1:, 1:] = x[..., :-1, :-1]
+    lo, hi = np.minimum(left, up), np.maximum(left, up)
+    med = np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
+    med[..., 0, :] = left[..., 0, :]
+    med[..., :, 0] = up[..., :, 0]
+    med[..., 0, 0] = 128
+    return med
+
+
+def channel_params(out: np.ndarray, c: int, known: np.ndarray, base: np.ndarray) -> tuple:
     """(mu4, ls8), each (N,), for plane c of N pixels from raw outputs (N, OUTPUTS).
 
-    `known` (N, 3) holds the pixel's values in the planes before c (the channel masks).
+    `base` (N, 3) is the base prediction; `known` (N, 3) holds the pixel's values in the
+    planes before c, whose residuals move the mean (the channel masks).
     """
-    mu4 = out[:, 2 * c] + fam.MU_CENTRE
+    mu4 = out[:, 2 * c] + fam.MU_SCALE * base[:, c]
     ls8 = np.minimum(np.maximum(out[:, 2 * c + 1], fam.LS_LO), fam.LS_HI)
     if c > 0:
         cp = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX), fam.COUPLE_MAX)
-        shift = cp[:, 0 if c == 1 else 1] * (2 * known[:, 0].astype(np.int64) - 255)
+        shift = cp[:, 0 if c == 1 else 1] * (known[:, 0] - base[:, 0])
         if c == 2:
-            shift += cp[:, 2] * (2 * known[:, 1].astype(np.int64) - 255)
-        mu4 = mu4 + ((shift + 16) >> 5)
+            shift += cp[:, 2] * (known[:, 1] - base[:, 1])
+        mu4 = mu4 + ((shift + 8) >> 4)
     return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI), ls8
 
 
-def image_tables(out: np.ndarray, rgb: np.ndarray, planes: int) -> tuple[np.ndarray, np.ndarray]:
-    """(symbols (N*P,), tables (N*P, 256)) in coding order for one image.
+def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
+                 planes: int) -> tuple[np.ndarray, np.ndarray]:
+    """(symbols (N*P,), tables (N*P, 256)) in coding order for a band of image rows.
 
-    out: raw outputs (H, W, OUTPUTS); rgb: the image as three planes (3, H, W).
+    out: raw outputs (h, W, OUTPUTS); rgb and base: (3, h, W) for the same rows.
     """
     flat_out = out.reshape(-1, out.shape[-1])
-    known = rgb.reshape(3, -1).T
-    tables = np.stack([logistic_tables(*channel_params(flat_out, c, known))
+    known = rgb.reshape(3, -1).T.astype(np.int64)
+    flat_base = base.reshape(3, -1).T
+    tables = np.stack([logistic_tables(*channel_params(flat_out, c, known, flat_base))
                        for c in range(planes)], axis=1)
     return known[:, :planes].reshape(-1), tables.reshape(-1, 256)
 
@@ -73,20 +95,22 @@ def encode_batch(engine: Engine, images: list[np.ndarray]) -> list[Coded]:
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int) -> Coded:
     coder, bits = entropy.encoder(), 0.0
+    base = base_prediction(rgb)
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
-        symbols, tables = image_tables(out[y : y + rows_per_chunk],
-                                       rgb[:, y : y + rows_per_chunk], planes)
+        band = slice(y, y + rows_per_chunk)
+        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes)
         entropy.encode(coder, symbols, tables)
         bits += entropy.cross_entropy_bits(symbols, tables)
     return Coded(entropy.finish(coder), bits)
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
-                 width: int, progress=None) -> np.ndarray:
+                 width: int, progress=None, trace=None) -> np.ndarray:
     """Decode same-sized images together; returns (B, P, H, W) uint8.
 
-    `progress`, if given, is called with the number of rows finished so far.
+    `progress`, if given, is called with 1 after each row; `trace`, if given, with
+    (y, x, c, tables) for every subpixel, so tests can compare with the encoder's tables.
     """
     decoders = [entropy.decoder(p) for p in payloads]
     batch = len(payloads)
@@ -99,11 +123,15 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
         row = img[:, :, y]
         for x in range(width):
             out = engine.pixel(acc_rows, row, x)
+            base = base_prediction(img[:, :, max(0, y - 1) : y + 1, max(0, x - 1) : x + 1])
+            base = base[:, :, -1, -1]
             for c in range(planes):
-                tables = logistic_tables(*channel_params(out, c, known))
+                tables = logistic_tables(*channel_params(out, c, known, base))
+                if trace is not None:
+                    trace(y, x, c, tables)
                 for b in range(batch):
                     known[b, c] = decoders[b].decode(family, tables[b : b + 1])[0]
             row[:, :, x] = known if planes == 3 else known[:, :1]
         if progress is not None:
-            progress(y + 1)
+            progress(1)
     return img[:, :planes]

@@ -92,8 +92,8 @@ class Predictor(nn.Module):
         self.head1 = QConv(width + 4 * LEFT, hidden, 1, 1)
         self.head2 = QConv(hidden, hidden, 1, 1)
         self.out = QConv(hidden, fam.OUTPUTS, 1, 1, relu=False)
-        with torch.no_grad():  # start wide (scale ~20 px) so early losses stay finite
-            self.out.bias[1 : 2 * fam.CHANNELS : 2] = 3.0
+        with torch.no_grad():  # start at a scale of ~4.5 px around the base prediction
+            self.out.bias[1 : 2 * fam.CHANNELS : 2] = 1.5
         self.quant = False
 
     def layers(self) -> list[QConv]:
@@ -137,21 +137,37 @@ def left_window(x: torch.Tensor) -> torch.Tensor:
     return torch.cat([F.pad(v, (d, 0))[..., : v.shape[-1]] for d in range(1, LEFT + 1)], 1)
 
 
+def base_prediction(x: torch.Tensor) -> torch.Tensor:
+    """A fixed integer predictor per channel (B,3,H,W): the median of left, above, and
+    left + above - above-left; the left pixel on the top row, the one above in the first
+    column, 128 at the origin. The network predicts the mean as a correction to it."""
+    left = F.pad(x, (1, 0, 0, 0))[..., :, :-1]
+    up = F.pad(x, (0, 0, 1, 0))[..., :-1, :]
+    corner = F.pad(x, (1, 0, 1, 0))[..., :-1, :-1]
+    lo, hi = torch.minimum(left, up), torch.maximum(left, up)
+    med = torch.where(corner >= hi, lo, torch.where(corner <= lo, hi, left + up - corner))
+    med[..., 0, :] = left[..., 0, :]
+    med[..., :, 0] = up[..., :, 0]
+    med[..., 0, 0] = 128.0
+    return med
+
+
 def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dict:
     """Logistic parameters on the integer grid of `family` (rounded when `quant`).
 
-    Returns mu4 (B,3,H,W) in quarter pixels after channel coupling, and ls8 (B,3,H,W).
+    Returns mu4 (B,3,H,W) in quarter pixels (base prediction + correction + channel
+    coupling to the earlier channels' residuals), and ls8 (B,3,H,W).
     """
     r = round_ste if quant else (lambda t: t)
     gains = torch.tensor(fam.output_gains(), dtype=y.dtype).view(1, -1, 1, 1)
     q = r(y * gains)
-    mu = q[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_CENTRE
+    base = base_prediction(x)
+    mu = q[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_SCALE * base
     ls = torch.clamp(q[:, 1 : 2 * fam.CHANNELS : 2], fam.LS_LO, fam.LS_HI)
     cp = torch.clamp(q[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX, fam.COUPLE_MAX)
-    red = 2 * x[:, 0] - 255.0
-    green = 2 * x[:, 1] - 255.0
-    shift_g = r(cp[:, 0] * red / 32.0)
-    shift_b = r((cp[:, 1] * red + cp[:, 2] * green) / 32.0)
+    res = x - base
+    shift_g = r(cp[:, 0] * res[:, 0] / 16.0)
+    shift_b = r((cp[:, 1] * res[:, 0] + cp[:, 2] * res[:, 1]) / 16.0)
     mu = torch.stack([mu[:, 0], mu[:, 1] + shift_g, mu[:, 2] + shift_b], 1)
     return {"mu4": torch.clamp(mu, fam.MU_LO, fam.MU_HI), "ls8": ls}
 

@@ -255,7 +255,7 @@ if __name__ == "__main__":
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
     """Cross-entropy of the exported integer model on tiles: what the coder will pay."""
-    from rowcast.codec import image_tables
+    from rowcast.codec import base_prediction, image_tables
     from rowcast.entropy import cross_entropy_bits
     from rowcast.predictor import Engine
     from rowcast.quantize import model_from_bytes
@@ -266,7 +266,7 @@ def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
     for start in range(0, len(x), 8):
         group = x[start : start + 8]
         for out, rgb in zip(engine.parallel(group), group, strict=True):
-            bits += cross_entropy_bits(*image_tables(out, rgb, 3))
+            bits += cross_entropy_bits(*image_tables(out, rgb, base_prediction(rgb), 3))
     return bits / x.size
 
 
