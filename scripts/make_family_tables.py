@@ -13,5 +13,5 @@ from rowcast.tables import build_logistic_cdf
 if __name__ == "__main__":
     out = Path(__file__).resolve().parents[1] / "src" / "rowcast" / "data" / "logistic_cdf.npy"
     table = build_logistic_cdf()
-    np.save(out, table, allow_pickle=False)
+    np.save(out, table)
     print(f"wrote {out} {table.shape} {table.dtype}")

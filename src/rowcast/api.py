@@ -20,7 +20,7 @@ from rowcast import archive, codec
 from rowcast.archive import ArchiveError, Entry, IndexEntry, ModelIdentity
 from rowcast.entropy import PayloadError
 from rowcast.errors import DataError, UsageError
-from rowcast.planes import PLANES, ImageError, checksum, read_planes, to_image
+from rowcast.planes import PLANES, ImageError, checksum, probe, read_planes, to_image
 from rowcast.predictor import Engine
 from rowcast.quantize import IntModel, ModelError, load_model
 
@@ -108,7 +108,11 @@ def output_name(path: str) -> str:
 
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
              force: bool = False, progress: Progress = None) -> Summary:
-    """Compress image files and directories into one archive at `dest` (atomic)."""
+    """Compress image files and directories into one archive at `dest` (atomic).
+
+    Every input is checked from its header first; then images are read, coded and written
+    one at a time, so memory stays bounded however many there are.
+    """
     dest = Path(dest)
     if dest.is_dir():
         raise UsageError(f"{dest}: is a directory")
@@ -117,42 +121,40 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     if not dest.parent.is_dir():
         raise UsageError(f"{dest}: no such directory {dest.parent}")
     files = collect_inputs(inputs)
+    for path, _ in files:
+        _checked(probe, path)
     net = _model(model)
-    images = []
-    for path, name in files:
-        try:
-            planes, mode = read_planes(path)
-        except ImageError as exc:
-            raise DataError(str(exc)) from None
-        images.append((name, planes, mode))
     engine = Engine(net)
-    groups: dict[tuple, list[int]] = defaultdict(list)
-    for i, (_, planes, mode) in enumerate(images):
-        groups[(mode, planes.shape)].append(i)
-    coded: dict[int, codec.Coded] = {}
-    for members in groups.values():
-        for start in range(0, len(members), DEFAULT_BATCH):
-            part = members[start : start + DEFAULT_BATCH]
-            for i, c in zip(part, codec.encode_batch(engine, [images[i][1] for i in part]),
-                            strict=True):
-                coded[i] = c
-                if progress:
-                    progress(1)
-    rows, entries = [], []
-    for i, (name, planes, mode) in enumerate(images):
-        raw = planes.tobytes()
-        c = coded[i]
-        method, payload = ("model", c.payload) if len(c.payload) < len(raw) else ("stored", raw)
-        entries.append(Entry(name, mode, planes.shape[2], planes.shape[1], method,
-                             checksum(planes), payload))
-        rows.append({"path": name, "mode": mode, "width": planes.shape[2],
-                     "height": planes.shape[1], "method": method, "bytes": len(payload),
-                     "cross_entropy_bits": c.cross_entropy})
+    rows: list[dict] = []
+
+    def entries() -> Iterator[Entry]:
+        for path, name in files:
+            planes, mode = _checked(read_planes, path)
+            coded = codec.encode_batch(engine, [planes])[0]
+            raw = planes.tobytes()
+            method, payload = ("model", coded.payload) if len(coded.payload) < len(raw) else (
+                "stored", raw)
+            rows.append({"path": name, "mode": mode, "width": planes.shape[2],
+                         "height": planes.shape[1], "method": method, "bytes": len(payload),
+                         "cross_entropy_bits": coded.cross_entropy})
+            if progress:
+                progress(1)
+            yield Entry(name, mode, planes.shape[2], planes.shape[1], method, checksum(planes),
+                        payload)
+
     try:
-        size = archive.write_archive(dest, identity(net), entries, force=force)
+        size = archive.write_archive(dest, identity(net), entries(), force=force)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
     return Summary(dest, identity(net), rows, size)
+
+
+def _checked(read, path: Path):
+    """Run a planes reader, turning its refusal into a DataError."""
+    try:
+        return read(path)
+    except ImageError as exc:
+        raise DataError(str(exc)) from None
 
 
 def read_index(src: Path | str) -> tuple[ModelIdentity, list[IndexEntry]]:

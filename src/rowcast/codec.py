@@ -49,6 +49,18 @@ def base_prediction(img: np.ndarray) -> np.ndarray:
     return med
 
 
+def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
+    """`base_prediction` of column x only, for a batch: row and above are (B, 3, W)."""
+    if above is None:
+        return row[:, :, x - 1].astype(np.int64) if x else np.full(row.shape[:2], 128, np.int64)
+    up = above[:, :, x].astype(np.int64)
+    if x == 0:
+        return up
+    left, corner = row[:, :, x - 1].astype(np.int64), above[:, :, x - 1]
+    lo, hi = np.minimum(left, up), np.maximum(left, up)
+    return np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
+
+
 def channel_params(out: np.ndarray, c: int, known: np.ndarray, base: np.ndarray) -> tuple:
     """(mu4, ls8), each (N,), for plane c of N pixels from raw outputs (N, OUTPUTS).
 
@@ -119,18 +131,18 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     known = np.zeros((batch, 3), np.int64)
     family = entropy.FAMILY
     for y in range(height):
-        acc_rows = engine.next_row(state, img[:, :, y - 1] if y else None)
+        above = img[:, :, y - 1] if y else None
+        acc_rows = engine.next_row(state, above)
         row = img[:, :, y]
         for x in range(width):
             out = engine.pixel(acc_rows, row, x)
-            base = base_prediction(img[:, :, max(0, y - 1) : y + 1, max(0, x - 1) : x + 1])
-            base = base[:, :, -1, -1]
+            base = base_at(row, above, x)
             for c in range(planes):
                 tables = logistic_tables(*channel_params(out, c, known, base))
                 if trace is not None:
                     trace(y, x, c, tables)
-                for b in range(batch):
-                    known[b, c] = decoders[b].decode(family, tables[b : b + 1])[0]
+                known[:, c] = [dec.decode(family, tables[b : b + 1])[0]
+                               for b, dec in enumerate(decoders)]
             row[:, :, x] = known if planes == 3 else known[:, :1]
         if progress is not None:
             progress(1)

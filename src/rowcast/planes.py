@@ -7,7 +7,9 @@ transparency keys, CMYK, several frames) is refused with the reason, never conve
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -36,11 +38,11 @@ class ImageError(Exception):
     """An input that cannot be coded exactly; the message names the file and the reason."""
 
 
-def read_planes(path: Path) -> tuple[np.ndarray, str]:
-    """(planes uint8 (P, H, W), mode) of an image file, or ImageError saying why not."""
+@contextlib.contextmanager
+def _opened(path: Path) -> Iterator[Image.Image]:
+    """An image whose format we can keep exactly; every failure becomes an ImageError."""
     try:
         with Image.open(path) as im:
-            im.load()
             mode = im.mode
             if getattr(im, "n_frames", 1) > 1:
                 raise ImageError(f"{path}: has {im.n_frames} frames; only single images "
@@ -52,7 +54,7 @@ def read_planes(path: Path) -> tuple[np.ndarray, str]:
                 raise ImageError(f"{path}: {reason or f'pixel format {mode} is not supported'}")
             if "transparency" in im.info:
                 raise ImageError(f"{path}: has a transparency key, which would be lost")
-            arr = np.asarray(im, dtype=np.uint8)
+            yield im
     except FileNotFoundError:
         raise ImageError(f"{path}: no such file") from None
     except IsADirectoryError:
@@ -63,6 +65,20 @@ def read_planes(path: Path) -> tuple[np.ndarray, str]:
         raise ImageError(f"{path}: not an image Pillow can read") from None
     except (OSError, SyntaxError, ValueError) as exc:
         raise ImageError(f"{path}: unreadable image ({exc})") from None
+
+
+def probe(path: Path) -> tuple[str, int, int]:
+    """(mode, width, height) from the file's header, or ImageError: a cheap check up front."""
+    with _opened(path) as im:
+        return im.mode, im.width, im.height
+
+
+def read_planes(path: Path) -> tuple[np.ndarray, str]:
+    """(planes uint8 (P, H, W), mode) of an image file, or ImageError saying why not."""
+    with _opened(path) as im:
+        im.load()
+        arr = np.asarray(im, dtype=np.uint8)
+        mode = im.mode
     planes = arr[None] if arr.ndim == 2 else arr.transpose(2, 0, 1)
     return np.ascontiguousarray(planes), mode
 

@@ -2,8 +2,8 @@
 
 A model file is one safetensors file: int8 weights, int32 biases and requantisation
 multipliers per layer, and a JSON card in the metadata (architecture, shifts, the accumulator
-bound of every layer, training summary). No pickle. The model's identity is the SHA-256 of
-its canonical bytes: the card as sorted compact JSON, then each tensor in name order.
+bound of every layer, training summary); loading it runs no code. The model's identity is the
+SHA-256 of its canonical bytes: the card as sorted compact JSON, then each tensor in name order.
 """
 
 from __future__ import annotations

@@ -44,7 +44,7 @@ def build_logistic_cdf() -> np.ndarray:
 def logistic_cdf() -> np.ndarray:
     """The committed CDF table, checked for shape and monotonicity on load."""
     with resources.files("rowcast").joinpath("data/logistic_cdf.npy").open("rb") as fh:
-        table = np.load(fh, allow_pickle=False)
+        table = np.load(fh)  # plain arrays only: numpy refuses object arrays by default
     if table.shape != (LEVELS, WIDTH) or table.dtype != np.int32:
         raise RuntimeError("rowcast/data/logistic_cdf.npy does not match the family grid")
     if (np.diff(table, axis=1) < 0).any() or table.min() < 0 or table.max() > CDF_ONE:

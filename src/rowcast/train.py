@@ -3,7 +3,8 @@
 The schedule is set by wall-clock time so that a run fits a budget on a small machine:
 cosine learning rate over the whole budget; at `qat_at` of it, the activation steps are
 calibrated from a batch and the rest of the run trains the quantised network.
-Checkpoints (safetensors + JSON, no pickle) are written every few minutes and at the end.
+Checkpoints (safetensors + JSON: loading them runs no code) are written every few
+minutes and at the end.
 """
 
 from __future__ import annotations
