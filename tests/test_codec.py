@@ -6,6 +6,8 @@ import io
 import numpy as np
 import pytest
 import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from PIL import Image
 
 import rowcast
@@ -152,3 +154,16 @@ def test_archive_is_smaller_than_png_on_heldout_photo_thumbnails(tmp_path, rgb64
         png_total += len(buf.getvalue())
     summary = rowcast.compress([folder], tmp_path / "t.rowcast")
     assert summary.archive_bytes < png_total
+
+
+@settings(max_examples=30, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(planes=st.sampled_from([1, 3]), height=st.integers(1, 6), width=st.integers(1, 6),
+       data=st.data())
+def test_any_small_image_round_trips(tiny_engine, planes, height, width, data):
+    """Property: whatever the pixels and the shape, decoding gives the image back."""
+    values = data.draw(st.lists(st.integers(0, 255), min_size=planes * height * width,
+                                max_size=planes * height * width))
+    image = np.array(values, np.uint8).reshape(planes, height, width)
+    _, decoded = round_trip(tiny_engine, [image])
+    assert np.array_equal(decoded[0], image)
