@@ -445,6 +445,21 @@ def test_compress_into_a_missing_directory_is_a_usage_error(made: Made, tmp_path
     assert not dest.parent.exists()
 
 
+def test_a_file_name_the_archive_cannot_hold_is_refused_before_any_coding(
+    tmp_path: Path,
+) -> None:
+    """A name with a drive-letter prefix (not portable) exits 2 naming the input file."""
+    folder = tmp_path / "names"
+    folder.mkdir()
+    bad = folder / "C:frame.png"
+    _gray().save(bad)
+    dest = tmp_path / "out.rca"
+
+    error_line(run("compress", folder, "-o", dest, "--model", TINY), 2, bad)
+
+    assert not dest.exists()
+
+
 def test_compress_onto_a_directory_is_a_usage_error_even_with_force(
     made: Made, tmp_path: Path
 ) -> None:

@@ -121,7 +121,11 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     if not dest.parent.is_dir():
         raise UsageError(f"{dest}: no such directory {dest.parent}")
     files = collect_inputs(inputs)
-    for path, _ in files:
+    for path, name in files:
+        try:
+            archive.normalise_path(name)
+        except ArchiveError as exc:
+            raise UsageError(f"{path}: cannot be stored under this name ({exc})") from None
         _checked(probe, path)
     net = _model(model)
     engine = Engine(net)
