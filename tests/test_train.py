@@ -18,7 +18,7 @@ def smooth_image(seed: int, size: int = 128) -> np.ndarray:
     return np.clip(base + rng.normal(0, 3, base.shape), 0, 255).astype(np.uint8)
 
 
-def test_a_short_run_trains_checkpoints_and_exports_a_working_model(tmp_path):
+def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     data = tmp_path / "images"
     data.mkdir()
     for i in range(3):
@@ -30,7 +30,14 @@ def test_a_short_run_trains_checkpoints_and_exports_a_working_model(tmp_path):
     net, meta = load_checkpoint(tmp_path / "run")
     assert net.quant and meta["state"]["summary"]["steps"] > 0
 
-    summary = export_checkpoint(tmp_path / "run", tmp_path / "mine.safetensors", "mine")
+    first = meta["state"]["summary"]["steps"]
+    train(Config(data=str(data), out=str(tmp_path / "more"), minutes=0.05, batch=4, lr=1e-4,
+                 validation=("held.png",), resume=str(tmp_path / "run")))
+    _, more = load_checkpoint(tmp_path / "more")
+    assert more["state"]["summary"]["steps"] > first
+    assert len(more["state"]["commands"]) == 2 and "--resume" in more["state"]["commands"][1]
+
+    summary = export_checkpoint(tmp_path / "more", tmp_path / "mine.safetensors", "mine")
     for key in ("val_float_bpsp", "val_quant_bpsp", "val_integer_bpsp"):
         assert 0 < summary[key] < 16
     model = load_model(tmp_path / "mine.safetensors")

@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import math
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -46,6 +46,13 @@ class Config:
     depth: int = 4
     seed: int = 0
     threads: int = 2
+    resume: str | None = None  # a finished run to continue from (weights, mode, history)
+
+
+def command(cfg: Config) -> str:
+    """The command line that runs `cfg`."""
+    extra = f" --resume {cfg.resume} --lr {cfg.lr:g}" if cfg.resume else ""
+    return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
 def _flatten_alpha(rgba: np.ndarray) -> np.ndarray:
@@ -194,12 +201,20 @@ def train(cfg: Config, log=print) -> Predictor:
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
     model = Predictor(cfg.width, cfg.hidden, cfg.depth)
+    history, commands, step, before = [], [command(cfg)], 0, 0.0
+    if cfg.resume:
+        model, meta = load_checkpoint(Path(cfg.resume))
+        cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth)
+        history = meta["state"]["history"]
+        commands = meta["state"].get("commands", [command(Config(**{
+            **meta["config"], "validation": tuple(meta["config"]["validation"])}))]) + commands
+        step, before = history[-1]["steps"], history[-1]["minutes"]
+        log(f"resuming {cfg.resume} after {step} steps, {before:.1f} min")
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
     out = Path(cfg.out)
     budget = cfg.minutes * 60.0
     start = time.monotonic()
-    last_save, step, ema = start, 0, None
-    history = []
+    last_save, ema = start, None
     while (elapsed := time.monotonic() - start) < budget:
         progress = elapsed / budget
         for group in opt.param_groups:
@@ -217,22 +232,24 @@ def train(cfg: Config, log=print) -> Predictor:
         step += 1
         ema = loss.item() if ema is None else 0.98 * ema + 0.02 * loss.item()
         if step % 100 == 0:
-            log(f"step {step} {elapsed / 60:.1f} min train {ema:.3f} bpsp")
+            log(f"step {step} {before + elapsed / 60:.1f} min train {ema:.3f} bpsp")
         if time.monotonic() - last_save > 300:
-            entry = {"step": step, "minutes": elapsed / 60, "train_bpsp": ema}
+            entry = {"steps": step, "minutes": before + elapsed / 60, "train_bpsp": ema}
             if tiles is not None:
                 entry["val_bpsp"] = evaluate(model, tiles, model.quant)
             history.append(entry)
             log(json.dumps(entry))
-            save_checkpoint(model, cfg, {"history": history}, out)
+            save_checkpoint(model, cfg, {"history": history, "commands": commands}, out)
             last_save = time.monotonic()
-    summary = {"steps": step, "minutes": (time.monotonic() - start) / 60, "train_bpsp": ema}
+    summary = {"steps": step, "minutes": before + (time.monotonic() - start) / 60,
+               "train_bpsp": ema}
     if tiles is not None:
         summary["val_float_bpsp"] = evaluate(model, tiles, False)
         summary["val_quant_bpsp"] = evaluate(model, tiles, True)
     history.append(summary)
     log(json.dumps(summary))
-    save_checkpoint(model, cfg, {"history": history, "summary": summary}, out)
+    save_checkpoint(model, cfg, {"history": history, "summary": summary, "commands": commands},
+                    out)
     return model
 
 
@@ -242,10 +259,12 @@ def main(
     minutes: float = 60.0,
     batch: int = 24,
     seed: int = 0,
+    lr: float = 2e-3,
+    resume: str | None = None,
 ) -> None:
-    """Command line: python -m rowcast.train DATA OUT --minutes M."""
-    train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed),
-          log=lambda s: print(s, flush=True))
+    """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]."""
+    train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
+                 resume=resume), log=lambda s: print(s, flush=True))
 
 
 if __name__ == "__main__":
@@ -287,7 +306,7 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
         "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
         "steps": history[-1].get("steps", history[-1].get("step")),
         "minutes": round(history[-1]["minutes"], 1),
-        "command": f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}",
+        "commands": meta["state"].get("commands", [command(cfg)]),
         "val_float_bpsp": round(evaluate(net, tiles, False), 4),
         "val_quant_bpsp": round(evaluate(net, tiles, True), 4),
     }
