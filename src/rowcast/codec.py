@@ -14,6 +14,7 @@ import numpy as np
 
 from rowcast import entropy
 from rowcast import family as fam
+from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
 from rowcast.tables import logistic_tables
@@ -28,25 +29,6 @@ class Coded:
 
     payload: bytes
     cross_entropy: float
-
-
-def base_prediction(img: np.ndarray) -> np.ndarray:
-    """The family's integer base prediction for every pixel of img (..., 3, H, W), int64.
-
-    Median of left, above and left + above - above-left; the left pixel on the top row, the
-    one above in the first column, 128 at the origin (as `network.base_prediction`).
-    """
-    x = img.astype(np.int64)
-    left, up, corner = np.zeros_like(x), np.zeros_like(x), np.zeros_like(x)
-    left[..., 1:] = x[..., :-1]
-    up[..., 1:, :] = x[..., :-1, :]
-    corner[..., 1:, 1:] = x[..., :-1, :-1]
-    lo, hi = np.minimum(left, up), np.maximum(left, up)
-    med = np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
-    med[..., 0, :] = left[..., 0, :]
-    med[..., :, 0] = up[..., :, 0]
-    med[..., 0, 0] = 128
-    return med
 
 
 def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:

@@ -11,6 +11,8 @@ One component, not a mixture: a mixture multiplies the cost of every 256-entry t
 number of components, and the tables dominate coding time on a CPU (see DEVELOPERS.md).
 """
 
+import numpy as np
+
 CHANNELS = 3  # the network always predicts R, G, B; gray images use the R head alone
 
 MU_SCALE = 4  # mean resolution: 1/4 pixel
@@ -35,3 +37,22 @@ OUTPUTS = 2 * CHANNELS + 3
 def output_gains() -> list[float]:
     """Factor from the last layer's real output to each integer parameter, in layout order."""
     return [MU_GAIN, LS_SCALE] * CHANNELS + [COUPLE_SCALE] * 3
+
+
+def base_prediction(img: np.ndarray) -> np.ndarray:
+    """The family's integer base prediction for every pixel of img (..., 3, H, W), int64.
+
+    Median of left, above and left + above - above-left; the left pixel on the top row, the
+    one above in the first column, 128 at the origin. The network's mean corrects it.
+    """
+    x = img.astype(np.int64)
+    left, up, corner = np.zeros_like(x), np.zeros_like(x), np.zeros_like(x)
+    left[..., 1:] = x[..., :-1]
+    up[..., 1:, :] = x[..., :-1, :]
+    corner[..., 1:, 1:] = x[..., :-1, :-1]
+    lo, hi = np.minimum(left, up), np.maximum(left, up)
+    med = np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
+    med[..., 0, :] = left[..., 0, :]
+    med[..., :, 0] = up[..., :, 0]
+    med[..., 0, 0] = 128
+    return med

@@ -137,21 +137,6 @@ def left_window(x: torch.Tensor) -> torch.Tensor:
     return torch.cat([F.pad(v, (d, 0))[..., : v.shape[-1]] for d in range(1, LEFT + 1)], 1)
 
 
-def base_prediction(x: torch.Tensor) -> torch.Tensor:
-    """A fixed integer predictor per channel (B,3,H,W): the median of left, above, and
-    left + above - above-left; the left pixel on the top row, the one above in the first
-    column, 128 at the origin. The network predicts the mean as a correction to it."""
-    left = F.pad(x, (1, 0, 0, 0))[..., :, :-1]
-    up = F.pad(x, (0, 0, 1, 0))[..., :-1, :]
-    corner = F.pad(x, (1, 0, 1, 0))[..., :-1, :-1]
-    lo, hi = torch.minimum(left, up), torch.maximum(left, up)
-    med = torch.where(corner >= hi, lo, torch.where(corner <= lo, hi, left + up - corner))
-    med[..., 0, :] = left[..., 0, :]
-    med[..., :, 0] = up[..., :, 0]
-    med[..., 0, 0] = 128.0
-    return med
-
-
 def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dict:
     """Logistic parameters on the integer grid of `family` (rounded when `quant`).
 
@@ -161,7 +146,7 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
     r = round_ste if quant else (lambda t: t)
     gains = torch.tensor(fam.output_gains(), dtype=y.dtype).view(1, -1, 1, 1)
     q = r(y * gains)
-    base = base_prediction(x)
+    base = torch.from_numpy(fam.base_prediction(x.detach().numpy())).to(x.dtype)
     mu = q[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_SCALE * base
     ls = torch.clamp(q[:, 1 : 2 * fam.CHANNELS : 2], fam.LS_LO, fam.LS_HI)
     cp = torch.clamp(q[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX, fam.COUPLE_MAX)
