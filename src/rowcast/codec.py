@@ -17,7 +17,7 @@ from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
-from rowcast.tables import logistic_tables
+from rowcast.tables import TABLE_TOTAL, logistic_tables
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
 PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
@@ -69,9 +69,10 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
     flat_out = out.reshape(-1, out.shape[-1])
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
-    tables = np.stack([logistic_tables(*channel_params(flat_out, c, known, flat_base))
-                       for c in range(planes)], axis=1)
-    return known[:, :planes].reshape(-1), tables.reshape(-1, 256)
+    params = [channel_params(flat_out, c, known, flat_base) for c in range(planes)]
+    mu4 = np.stack([p[0] for p in params], axis=1).reshape(-1)  # pixel-major, then plane
+    ls8 = np.stack([p[1] for p in params], axis=1).reshape(-1)
+    return known[:, :planes].reshape(-1), logistic_tables(mu4, ls8)
 
 
 def encode_batch(engine: Engine, images: list[np.ndarray]) -> list[Coded]:
@@ -95,7 +96,7 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int) -> Coded:
         band = slice(y, y + rows_per_chunk)
         symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes)
         entropy.encode(coder, symbols, tables)
-        bits += entropy.cross_entropy_bits(symbols, tables)
+        bits += entropy.cross_entropy_bits(symbols, tables, total=TABLE_TOTAL)
     return Coded(entropy.finish(coder), bits)
 
 

@@ -23,6 +23,7 @@ D_MAX = 4 * 254 + 2 - fam.MU_LO
 D_MIN = 2 - fam.MU_HI
 WIDTH = D_MAX - D_MIN + 1  # CDF table columns per level
 CDF_ONE = 1 << fam.CDF_BITS
+TABLE_TOTAL = CDF_ONE + 256  # what every table sums to
 _CTX = decimal.Context(prec=40, rounding=decimal.ROUND_HALF_UP)
 
 
