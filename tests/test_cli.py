@@ -306,6 +306,25 @@ def test_verify_against_fails_when_the_directory_has_an_extra_image(
     assert "not in the archive" in problems[0]
 
 
+def test_verify_against_reports_every_problem_not_just_the_first_kind(
+    made: Made, originals_copy: Path
+) -> None:
+    """A changed pixel does not hide an extra image: both are named."""
+    changed = originals_copy / "sub" / "gray.png"
+    mode, array = pixels(changed)
+    array[3, 4] ^= 1
+    Image.fromarray(array, mode).save(changed)
+    Image.fromarray(smooth(5, 6, 3, 9), "RGB").save(originals_copy / "sub" / "extra.png")
+
+    result = run("verify", made.archive, "--against", originals_copy, "--model", TINY)
+
+    assert result.exit_code == 1
+    problems = result.stderr.splitlines()
+    assert len(problems) == 2
+    assert any("extra.png" in p and "not in the archive" in p for p in problems)
+    assert any("sub/gray.png" in p and "differ" in p for p in problems)
+
+
 def test_verify_against_a_path_that_is_not_a_directory_is_a_usage_error(
     made: Made, tmp_path: Path
 ) -> None:

@@ -270,13 +270,14 @@ def verify(src: Path | str, *, against: Path | str | None = None,
     a verified archive can stand in for the directory.
     """
     problems: list[str] = []
-    seen: set[str] = set()
     checked = 0
     originals = dict((name, path) for path, name in collect_inputs([against])) if against else {}
+    in_archive = {e.path for e in read_index(src)[1]}
+    problems += [f"{path}: not in the archive" for name, path in sorted(originals.items())
+                 if name not in in_archive]
     try:
         for e, planes in decode_entries(src, model=model, batch=batch, progress=progress):
             checked += 1
-            seen.add(e.path)
             if against is None:
                 continue
             if e.path not in originals:
@@ -291,6 +292,4 @@ def verify(src: Path | str, *, against: Path | str | None = None,
                 problems.append(f"{originals[e.path]}: pixels differ from the archive's {e.path}")
     except DataError as exc:
         problems.append(str(exc))
-    problems += [f"{path}: not in the archive" for name, path in sorted(originals.items())
-                 if name not in seen and not problems]
     return Check(checked, problems)
