@@ -13,6 +13,7 @@ import subprocess
 import sys
 from collections.abc import Callable
 from dataclasses import dataclass
+from importlib import resources
 from pathlib import Path
 
 import numpy as np
@@ -542,6 +543,25 @@ def test_decompress_with_another_model_names_the_archives_model(
 
     assert f"model {TINY_NAME}" in line
     assert files_under(out) == set()
+
+
+def test_archives_of_every_bundled_model_decode_without_naming_it(tmp_path: Path) -> None:
+    """Earlier default models stay in the package, so an archive made with any bundled model
+    decodes and verifies with no --model after the default changes."""
+    folder = resources.files("rowcast").joinpath("models")
+    bundled = sorted(ref.name for ref in folder.iterdir() if ref.name.endswith(".safetensors"))
+    assert "default.safetensors" in bundled
+    image = tmp_path / "cam.png"
+    Image.fromarray(np.tile(np.arange(24, dtype=np.uint8) * 9, (20, 1))).save(image)
+    for name in bundled:
+        with resources.as_file(folder.joinpath(name)) as model:
+            archive = tmp_path / f"{name}.rowcast"
+            assert run("compress", image, "-o", archive, "--model", model).exit_code == 0
+        out = tmp_path / f"{name}-out"
+        assert run("decompress", archive, "-o", out).exit_code == 0, name
+        (mode, got), (_, want) = pixels(out / "cam.png"), pixels(image)
+        assert mode == "L" and np.array_equal(got, want)
+        assert run("verify", archive).exit_code == 0
 
 
 def test_verify_with_another_model_is_a_usage_error(made: Made, tmp_path: Path) -> None:

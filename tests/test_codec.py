@@ -12,9 +12,13 @@ from PIL import Image
 
 import rowcast
 from rowcast.codec import base_prediction, decode_batch, encode_batch, image_tables
+from rowcast.family import row_activity
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
+from rowcast.network import Predictor
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine, conv_reference
+from rowcast.quantize import export, model_from_bytes, to_bytes
+from rowcast.train import calibrate
 
 
 def round_trip(engine, images):
@@ -82,6 +86,48 @@ def test_encoder_and_decoder_tables_are_identical(default_engine, rgb64):
 
     decode_batch(default_engine, [c.payload for c in coded], 3, 64, 64, trace=check)
     assert seen == []
+
+
+def test_activity_is_the_scaled_mean_miss_of_the_rows_above():
+    """Row y's activity: 4 x mean |value - base prediction| over rows 0..y-1, floored,
+    clamped to 255; 0 on the top row (definition in family.py, checked by plain loops)."""
+    rng = np.random.default_rng(7)
+    img = rng.integers(0, 256, (3, 9, 7)).astype(np.uint8)
+    img[:, :4] //= 16  # quiet rows first, so the clamp and the small values both occur
+    miss = np.abs(img.astype(int) - base_prediction(img))
+    for c in range(3):
+        for y in range(9):
+            want = 0 if y == 0 else min(255, (4 * int(miss[c, :y].sum())) // (y * 7))
+            assert row_activity(img)[c, y] == want
+
+
+def small_model(left: int, activity: bool) -> Engine:
+    """A random quantised network (not trained) exported to an integer model."""
+    torch.manual_seed(5)
+    net = Predictor(width=8, hidden=12, depth=2, left=left, activity=activity)
+    calibrate(net, torch.randint(0, 256, (2, 3, 16, 16)).float())
+    net.quant = True
+    return Engine(model_from_bytes(to_bytes(*export(net, "small")), "small"))
+
+
+@pytest.mark.parametrize("planes", [1, 3])
+def test_longer_left_window_and_activity_input_decode_exactly(rgb64, planes):
+    """A head with 5 left pixels and the activity input: the decoder's incremental activity
+    and window give the encoder's tables for every subpixel, and pixels come back exactly."""
+    engine = small_model(left=5, activity=True)
+    images = [im[:planes, :20, :24].copy() for im in rgb64[:2]]
+    coded = encode_batch(engine, images)
+    rgb = np.stack([as_rgb(im) for im in images])
+    expected = [image_tables(out, im, base_prediction(im), planes)[1].reshape(20, 24, planes, 256)
+                for out, im in zip(engine.parallel(rgb), rgb, strict=True)]
+    seen = []
+
+    def check(y, x, c, tables):
+        seen.extend((b, y, x, c) for b in range(2)
+                    if not np.array_equal(tables[b], expected[b][y, x, c]))
+
+    decoded = decode_batch(engine, [c.payload for c in coded], planes, 20, 24, trace=check)
+    assert seen == [] and np.array_equal(decoded, np.stack(images))
 
 
 def test_base_prediction_follows_its_definition_at_edges_and_inside():

@@ -68,11 +68,13 @@ def test_model_files_hold_no_pickle():
     assert b"\x80\x04\x95" not in data[: 8 + n]  # the opening of a protocol-4 pickle
 
 
-def test_integer_network_matches_what_quantised_training_computed():
+@pytest.mark.parametrize(("left", "activity"), [(3, False), (5, True)])
+def test_integer_network_matches_what_quantised_training_computed(left, activity):
     """The exported integer network reproduces the quantised float forward pass on >= 99.5%
-    of its outputs, and never differs by more than one step (rounding ties)."""
+    of its outputs, and never differs by more than one step (rounding ties); with the plain
+    head and with a longer left window plus the activity input."""
     torch.manual_seed(3)
-    net = Predictor(width=16, hidden=16, depth=3)
+    net = Predictor(width=16, hidden=16, depth=3, left=left, activity=activity)
     rng = np.random.default_rng(3)
     x = rng.integers(0, 256, (2, 3, 12, 14)).astype(np.uint8)
     calibrate(net, torch.from_numpy(x).float())

@@ -10,9 +10,11 @@ from rowcast.tables import (
     LEVELS,
     TABLE_TOTAL,
     WIDTH,
+    all_tables,
     exact_logistic_cdf,
     logistic_cdf,
     logistic_tables,
+    table_rows,
 )
 
 
@@ -75,3 +77,35 @@ def test_code_length_is_bounded_below_by_cross_entropy():
     decoded = [decoder.decode(entropy.FAMILY, tables[i : i + 1])[0] for i in range(len(symbols))]
     assert decoded == list(symbols)
     assert bits - 32 <= 8 * len(payload) <= 1.005 * bits + 64
+
+
+def test_every_table_row_matches_its_definition():
+    """The precomputed table of each (level, mean) is the count formula of docs/FORMAT.md,
+    computed here independently from the CDF table, at both ends of the grid and inside."""
+    cdf = logistic_cdf().astype(np.int64)
+    rng = np.random.default_rng(11)
+    mu4 = np.concatenate([[fam.MU_LO, fam.MU_HI, 0, 511], rng.integers(fam.MU_LO, fam.MU_HI, 60)])
+    ls8 = np.concatenate([[fam.LS_LO, fam.LS_HI, 0, 7], rng.integers(fam.LS_LO, fam.LS_HI, 60)])
+    tables = logistic_tables(mu4, ls8)
+    for table, m, lv in zip(tables, mu4, ls8 - fam.LS_LO, strict=True):
+        c = [cdf[lv, 4 * j + 2 - m - D_MIN] for j in range(255)]  # C at the bin boundaries
+        want = [c[0] + 1] + [c[j] - c[j - 1] + 1 for j in range(1, 255)] + [CDF_ONE + 1 - c[254]]
+        assert table.tolist() == want
+
+
+def test_a_model_built_from_a_table_decodes_what_the_family_encoded():
+    """The decoder builds one constriction model per distinct table and reuses it; that model
+    must be the one the encoder's family builds from the same table, on tables from all over
+    the grid (any difference would turn the decoded symbols into garbage)."""
+    rng = np.random.default_rng(5)
+    n = 20_000
+    mu4 = rng.integers(fam.MU_LO, fam.MU_HI + 1, n)
+    ls8 = rng.integers(fam.LS_LO, fam.LS_HI + 1, n)
+    tables = logistic_tables(mu4, ls8)
+    symbols = np.array([rng.choice(256, p=t / t.sum()) for t in tables[:n]])
+    coder = entropy.encoder()
+    entropy.encode(coder, symbols, tables)
+    decoder = entropy.decoder(entropy.finish(coder))
+    models = entropy.Models(all_tables())
+    rows = table_rows(mu4, ls8).tolist()
+    assert [decoder.decode(models[r]) for r in rows] == symbols.tolist()

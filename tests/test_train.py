@@ -2,12 +2,15 @@
 file that loads, codes exactly, and records its validation figures."""
 
 import numpy as np
+import pytest
+import torch
 from PIL import Image
 
 from rowcast.codec import decode_batch, encode_batch
+from rowcast.network import Predictor
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
-from rowcast.train import Config, export_checkpoint, load_checkpoint, train
+from rowcast.train import Config, calibrate, export_checkpoint, grow, load_checkpoint, train
 
 
 def smooth_image(seed: int, size: int = 128) -> np.ndarray:
@@ -47,3 +50,20 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     image = smooth_image(5, 24).transpose(2, 0, 1).copy()
     (coded,) = encode_batch(engine, [image])
     assert np.array_equal(decode_batch(engine, [coded.payload], 3, 24, 24)[0], image)
+
+
+@pytest.mark.parametrize("quant", [False, True])
+def test_growing_the_head_keeps_what_the_network_computes(quant):
+    """A wider head, a longer left window and the activity input added to a trained network
+    change none of its outputs, float or quantised, so a run can continue from it."""
+    torch.manual_seed(2)
+    net = Predictor(width=8, hidden=8, depth=2)
+    x = torch.randint(0, 256, (2, 3, 12, 12)).float()
+    calibrate(net, x)
+    net.quant = quant
+    with torch.no_grad():
+        net.out.bias.normal_()  # outputs that depend on everything
+    big = grow(net, hidden=16, left=5, activity=True)
+    assert (big.hidden, big.left, big.activity) == (16, 5, True)
+    with torch.no_grad():
+        assert torch.equal(net(x), big(x))

@@ -22,7 +22,7 @@ from rowcast.entropy import PayloadError
 from rowcast.errors import DataError, UsageError
 from rowcast.planes import PLANES, ImageError, checksum, probe, read_planes, to_image
 from rowcast.predictor import Engine
-from rowcast.quantize import IntModel, ModelError, load_model
+from rowcast.quantize import IntModel, ModelError, bundled_model, load_model
 
 IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif", ".ppm",
                   ".pgm", ".pnm", ".tga"}
@@ -186,7 +186,7 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
         entries = [e for e in entries if e.path in wanted]
     net = None
     if any(e.method == "model" for e in entries):
-        net = _model(model)
+        net = (model is None and bundled_model(ident.sha256)) or _model(model)
         if net.sha256 != ident.sha256:
             raise UsageError(f"{src}: was made with model {ident.name} "
                              f"({ident.sha256.hex()[:12]}), not {net.name} "

@@ -8,16 +8,18 @@ same-sized images at once, each with its own range decoder.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from rowcast import entropy
 from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
-from rowcast.tables import TABLE_TOTAL, logistic_tables
+from rowcast.tables import TABLE_TOTAL, all_tables, logistic_tables, table_rows
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
 PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
@@ -38,26 +40,35 @@ def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
     up = above[:, :, x].astype(np.int64)
     if x == 0:
         return up
-    left, corner = row[:, :, x - 1].astype(np.int64), above[:, :, x - 1]
-    lo, hi = np.minimum(left, up), np.maximum(left, up)
-    return np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
+    left = row[:, :, x - 1].astype(np.int64)
+    # the median of left, up and left + up - corner is that last value clamped to [lo, hi]
+    return np.minimum(np.maximum(left + up - above[:, :, x - 1], np.minimum(left, up)),
+                      np.maximum(left, up))
 
 
-def channel_params(out: np.ndarray, c: int, known: np.ndarray, base: np.ndarray) -> tuple:
-    """(mu4, ls8), each (N,), for plane c of N pixels from raw outputs (N, OUTPUTS).
+def pixel_params(out: np.ndarray, base: np.ndarray) -> tuple:
+    """(means before the channel masks, log-scales, couplings), each (N, 3), for N pixels.
 
-    `base` (N, 3) is the base prediction; `known` (N, 3) holds the pixel's values in the
-    planes before c, whose residuals move the mean (the channel masks).
+    out: raw outputs (N, OUTPUTS); base: the base prediction (N, 3).
     """
-    mu4 = out[:, 2 * c] + fam.MU_SCALE * base[:, c]
-    ls8 = np.minimum(np.maximum(out[:, 2 * c + 1], fam.LS_LO), fam.LS_HI)
-    if c > 0:
-        cp = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX), fam.COUPLE_MAX)
-        shift = cp[:, 0 if c == 1 else 1] * (known[:, 0] - base[:, 0])
-        if c == 2:
-            shift += cp[:, 2] * (known[:, 1] - base[:, 1])
+    means = out[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_SCALE * base
+    ls8 = np.minimum(np.maximum(out[:, 1 : 2 * fam.CHANNELS : 2], fam.LS_LO), fam.LS_HI)
+    couplings = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX),
+                           fam.COUPLE_MAX)
+    return means, ls8, couplings
+
+
+def plane_mean(means: np.ndarray, couplings: np.ndarray, c: int,
+               residuals: np.ndarray) -> np.ndarray:
+    """mu4 (N,) of plane c: its mean moved by the residuals (value minus base, (N, 3)) of
+    the planes before it (the channel masks), then clamped to the grid."""
+    mu4 = means[:, c]
+    if c == 1:
+        mu4 = mu4 + ((couplings[:, 0] * residuals[:, 0] + 8) >> 4)
+    elif c == 2:
+        shift = couplings[:, 1] * residuals[:, 0] + couplings[:, 2] * residuals[:, 1]
         mu4 = mu4 + ((shift + 8) >> 4)
-    return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI), ls8
+    return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
 
 
 def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
@@ -66,13 +77,13 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
 
     out: raw outputs (h, W, OUTPUTS); rgb and base: (3, h, W) for the same rows.
     """
-    flat_out = out.reshape(-1, out.shape[-1])
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
-    params = [channel_params(flat_out, c, known, flat_base) for c in range(planes)]
-    mu4 = np.stack([p[0] for p in params], axis=1).reshape(-1)  # pixel-major, then plane
-    ls8 = np.stack([p[1] for p in params], axis=1).reshape(-1)
-    return known[:, :planes].reshape(-1), logistic_tables(mu4, ls8)
+    means, ls8, couplings = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
+    residuals = known - flat_base
+    mu4 = np.stack([plane_mean(means, couplings, c, residuals) for c in range(planes)], axis=1)
+    return known[:, :planes].reshape(-1), logistic_tables(mu4.reshape(-1),
+                                                          ls8[:, :planes].reshape(-1))
 
 
 def encode_batch(engine: Engine, images: list[np.ndarray]) -> list[Coded]:
@@ -106,27 +117,46 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
 
     `progress`, if given, is called with 1 after each row; `trace`, if given, with
     (y, x, c, tables) for every subpixel, so tests can compare with the encoder's tables.
+    numpy's BLAS runs single-threaded here: the per-pixel products are tiny, and its
+    threads would only contend with torch's for the same cores (measured: 1.7x slower).
     """
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _decode(engine, payloads, planes, height, width, progress, trace)
+
+
+@functools.cache
+def _models() -> entropy.Models:
+    """The coder's models of all tables, built as decoding meets them (at most 59k, 66 MB)."""
+    return entropy.Models(all_tables())
+
+
+def _decode(engine: Engine, payloads: list[bytes], planes: int, height: int, width: int,
+            progress, trace) -> np.ndarray:
     decoders = [entropy.decoder(p) for p in payloads]
     batch = len(payloads)
     img = np.zeros((batch, 3, height, width), np.uint8)
     state = engine.start(batch, width)
-    known = np.zeros((batch, 3), np.int64)
-    family = entropy.FAMILY
+    residuals = np.zeros((batch, 3), np.int64)
+    misses = np.zeros((batch, 3), np.int64)  # sum of |residual| over the rows so far
+    models = _models()
     for y in range(height):
         above = img[:, :, y - 1] if y else None
-        acc_rows = engine.next_row(state, above)
+        acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
         row = img[:, :, y]
         for x in range(width):
-            out = engine.pixel(acc_rows, row, x)
             base = base_at(row, above, x)
+            means, ls8, couplings = pixel_params(engine.pixel(acc_rows, row, x), base)
             for c in range(planes):
-                tables = logistic_tables(*channel_params(out, c, known, base))
+                mu4 = plane_mean(means, couplings, c, residuals)
                 if trace is not None:
-                    trace(y, x, c, tables)
-                known[:, c] = [dec.decode(family, tables[b : b + 1])[0]
-                               for b, dec in enumerate(decoders)]
-            row[:, :, x] = known if planes == 3 else known[:, :1]
+                    trace(y, x, c, logistic_tables(mu4, ls8[:, c]))
+                rows = table_rows(mu4, ls8[:, c]).tolist()
+                row[:, c, x] = [d.decode(models[r]) for d, r in zip(decoders, rows, strict=True)]
+                residuals[:, c] = row[:, c, x] - base[:, c]
+            if planes == 1:
+                row[:, 1:, x] = row[:, :1, x]
+                residuals[:, 1:] = residuals[:, :1]
+            misses += np.abs(residuals)
         if progress is not None:
             progress(1)
     return img[:, :planes]

@@ -39,6 +39,24 @@ def decoder(payload: bytes):
     return constriction.stream.queue.RangeDecoder(np.frombuffer(payload, "<u4").astype(np.uint32))
 
 
+class Models(dict):
+    """constriction models of the rows of a table array, each built on first use.
+
+    Decoding one symbol with a built model costs about a tenth of passing its table
+    (measured: 0.2 vs 2.4 us), and the same few tens of thousands of tables recur all
+    through a batch. The model is what the family builds from the same table row.
+    """
+
+    def __init__(self, tables: np.ndarray) -> None:
+        super().__init__()
+        self.tables = tables
+
+    def __missing__(self, row: int):
+        model = constriction.stream.model.Categorical(self.tables[row], perfect=False)
+        self[row] = model
+        return model
+
+
 def cross_entropy_bits(symbols: np.ndarray, tables: np.ndarray,
                        total: float | None = None) -> float:
     """The model's cross-entropy in bits: the floor that the payload approaches.

@@ -27,6 +27,8 @@ LS_HI = 35  # scale exp(4.375) ~ 79 px
 COUPLE_SCALE = 64  # coupling-coefficient resolution: mu4 += round(c * residual / 16)
 COUPLE_MAX = 128  # |coefficient| <= 2
 
+ACTIVITY_SCALE = 4  # the activity input is 4 x the mean |value - base| of the rows above
+
 CDF_BITS = 16  # the CDF is an integer in [0, 2**16]; each value's count gets +1 on top
 
 # Output layout of the network's last layer: (mu, log-scale) for R, G, B, then the
@@ -56,3 +58,18 @@ def base_prediction(img: np.ndarray) -> np.ndarray:
     med[..., :, 0] = up[..., :, 0]
     med[..., 0, 0] = 128
     return med
+
+
+def activity_from_sums(sums: np.ndarray, rows: np.ndarray | int, width: int) -> np.ndarray:
+    """Activity of a row from the sum of |value - base| over the `rows` rows above it:
+    ACTIVITY_SCALE x their mean, floored and clamped to 0..255 (0 on the top row)."""
+    return np.minimum(ACTIVITY_SCALE * sums // np.maximum(rows * width, 1), 255)
+
+
+def row_activity(img: np.ndarray) -> np.ndarray:
+    """Activity (..., 3, H) of every row of img (..., 3, H, W): how far the base prediction
+    missed on the rows above, per channel. It tells the network how noisy this image is."""
+    x = img.astype(np.int64)
+    per_row = np.abs(x - base_prediction(x)).sum(-1)
+    above = np.cumsum(per_row, -1) - per_row
+    return activity_from_sums(above, np.arange(x.shape[-2]), x.shape[-1])

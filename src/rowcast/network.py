@@ -5,10 +5,12 @@ Raster order, and inside a pixel R, then G, then B. The network has two parts:
 * the **row stack** sees only rows strictly above the current one. Its input is the image
   shifted down by one row, and every convolution is padded on top only (kernel height 2), so
   output row y depends on rows < y. The decoder runs it once per finished row.
-* the **pixel head** joins the row-stack features at (y, x) with the three pixels to the left
+* the **pixel head** joins the row-stack features at (y, x) with the pixels to the left
   in the same row (a mask-A window: never the current pixel) through two 1x1 layers, and
-  emits for each channel a discretised logistic. The channel masks are the last step: G's
-  mean moves linearly with R, and B's with R and G, as decoded values become known.
+  emits for each channel a discretised logistic. It may also see the row's *activity*: how
+  far the base prediction missed on all rows above, a running measure of the image's noise.
+  The channel masks are the last step: G's mean moves linearly with R, and B's with R and
+  G, as decoded values become known.
 
 Every layer is quantisation-aware: weights round to int8 per output channel, activations to
 uint8 with a learned step, the output parameters to the grid of `family`. What training sees
@@ -26,7 +28,7 @@ from torch import nn
 from rowcast import family as fam
 
 PIXEL_STEP = 1.0 / 255.0  # pixels enter as integers 0..255 with this real step
-LEFT = 3  # pixels to the left that the head sees
+LEFT = 3  # pixels to the left that the head sees, unless a model says otherwise
 
 
 def round_ste(x: torch.Tensor) -> torch.Tensor:
@@ -84,12 +86,14 @@ class QConv(nn.Module):
 class Predictor(nn.Module):
     """Row stack + pixel head; see the module docstring."""
 
-    def __init__(self, width: int = 48, hidden: int = 64, depth: int = 4) -> None:
+    def __init__(self, width: int = 48, hidden: int = 64, depth: int = 4,
+                 left: int = LEFT, activity: bool = False) -> None:
         super().__init__()
-        self.width, self.hidden, self.depth = width, hidden, depth
+        self.width, self.hidden, self.depth, self.left = width, hidden, depth, left
+        self.activity = activity
         rows = [QConv(4, width, 2, 5)] + [QConv(width, width, 2, 3) for _ in range(depth - 1)]
         self.rows = nn.ModuleList(rows)
-        self.head1 = QConv(width + 4 * LEFT, hidden, 1, 1)
+        self.head1 = QConv(width + 4 * left + 3 * activity, hidden, 1, 1)
         self.head2 = QConv(hidden, hidden, 1, 1)
         self.out = QConv(hidden, fam.OUTPUTS, 1, 1, relu=False)
         with torch.no_grad():  # start at a scale of ~4.5 px around the base prediction
@@ -105,7 +109,8 @@ class Predictor(nn.Module):
         steps = [px]
         for layer in self.rows[:-1]:
             steps.append(layer.step.expand(self.width))
-        steps.append(torch.cat([self.rows[-1].step.expand(self.width), px.repeat(LEFT)]))
+        steps.append(torch.cat([self.rows[-1].step.expand(self.width), px.repeat(self.left),
+                                px[: 3 * self.activity]]))
         steps.append(self.head1.step.expand(self.hidden))
         steps.append(self.head2.step.expand(self.hidden))
         return steps
@@ -116,7 +121,8 @@ class Predictor(nn.Module):
         a = row_stack_input(x)
         for layer, step in zip(self.rows, steps, strict=False):
             a = layer(a, step, self.quant)
-        h = self.head1(torch.cat([a, left_window(x)], 1), steps[len(self.rows)], self.quant)
+        head_in = [a, left_window(x, self.left)] + [activity_planes(x)] * self.activity
+        h = self.head1(torch.cat(head_in, 1), steps[len(self.rows)], self.quant)
         h = self.head2(h, steps[-2], self.quant)
         return self.out(h, steps[-1], self.quant)
 
@@ -131,10 +137,16 @@ def row_stack_input(x: torch.Tensor) -> torch.Tensor:
     return F.pad(with_valid(x), (0, 0, 1, 0))[:, :, :-1]
 
 
-def left_window(x: torch.Tensor) -> torch.Tensor:
-    """The pixels (with valid plane) at x-1, x-2, x-3 of the same row, zero past the edge."""
+def left_window(x: torch.Tensor, left: int) -> torch.Tensor:
+    """The pixels (with valid plane) at x-1 .. x-left of the same row, zero past the edge."""
     v = with_valid(x)
-    return torch.cat([F.pad(v, (d, 0))[..., : v.shape[-1]] for d in range(1, LEFT + 1)], 1)
+    return torch.cat([F.pad(v, (d, 0))[..., : v.shape[-1]] for d in range(1, left + 1)], 1)
+
+
+def activity_planes(x: torch.Tensor) -> torch.Tensor:
+    """`family.row_activity` of pixels x (B, 3, H, W), spread over each row."""
+    act = torch.from_numpy(fam.row_activity(x.detach().numpy())).to(x.dtype)
+    return act.unsqueeze(-1).expand(-1, -1, -1, x.shape[-1])
 
 
 def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dict:

@@ -16,7 +16,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from rowcast.network import LEFT, left_window, row_stack_input, with_valid
+from rowcast.network import activity_planes, left_window, row_stack_input, with_valid
 from rowcast.quantize import EXACT_F32, IntLayer, IntModel
 
 torch.backends.cudnn.allow_tf32 = False
@@ -42,9 +42,21 @@ def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
 
 
 def requantise_np(acc: np.ndarray, layer: IntLayer) -> np.ndarray:
-    """The same for accumulators (N, C) in a float64 numpy array."""
-    y = np.floor((acc * layer.mult + 2.0 ** (layer.shift - 1)) * 2.0**-layer.shift)
-    return np.minimum(np.maximum(y, 0.0), 255.0) if layer.relu else y
+    """The same for accumulators (N, C) in a float64 numpy array (overwritten), as
+    floor(acc * (mult / 2**shift) + 1/2): each step is exact (a product of < 2**40 scaled by
+    a power of two, then a sum equal to the numerator above over 2**shift, shift <= 52)."""
+    acc *= _scale(layer)
+    acc += 0.5
+    np.floor(acc, out=acc)
+    if layer.relu:
+        np.maximum(acc, 0.0, out=acc)
+        np.minimum(acc, 255.0, out=acc)
+    return acc
+
+
+@functools.cache
+def _scale(layer: IntLayer) -> np.ndarray:
+    return layer.mult.astype(np.float64) * 2.0**-layer.shift  # exact: a power-of-two scale
 
 
 def conv_fast(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
@@ -79,7 +91,16 @@ class Engine:
         self.head1, self.head2, self.out = model.layers[model.depth :]
         self.conv = conv_fast if self_test(model) else conv_reference
         w1 = self.head1.weight[:, :, 0, 0].T.astype(np.float64)  # exact: bounds < 2**53
-        self._w1_rows, self._w1_left = w1[: model.width], w1[model.width :]
+        self._w1_rows = torch.from_numpy(w1[: model.width]).to(_dtype(self.head1))
+        self._w1_activity = w1[w1.shape[0] - 3 :] if model.activity else None
+        # The head's left window: weights of pixel x - d at rows 4(d-1)..4(d-1)+3 (R, G, B,
+        # valid). With n pixels to the left: their RGB weights in column order, and the
+        # valid planes' constant contribution.
+        self.left = model.left
+        left = w1[model.width : model.width + 4 * self.left].reshape(self.left, 4, -1)
+        self._left = [left[:n][::-1, :3].reshape(3 * n, left.shape[2])
+                      for n in range(self.left + 1)]
+        self._valid = [255.0 * left[:n, 3].sum(0) for n in range(self.left + 1)]
         self._w2 = self.head2.weight[:, :, 0, 0].T.astype(np.float64)
         self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64)
 
@@ -90,7 +111,10 @@ class Engine:
         a = row_stack_input(t)
         for layer in self.rows:
             a = requantise(self.conv(a, layer), layer)
-        h = torch.cat([a.to(torch.float32), left_window(t)], 1)
+        head_in = [a.to(torch.float32), left_window(t, self.left)]
+        if self.model.activity:
+            head_in.append(activity_planes(t))
+        h = torch.cat(head_in, 1)
         for layer in (self.head1, self.head2, self.out):
             h = requantise(self.conv(h, layer), layer)
         return h.permute(0, 2, 3, 1).to(torch.int64).numpy()
@@ -101,10 +125,12 @@ class Engine:
         chans = [4] + [layer.weight.shape[0] for layer in self.rows[:-1]]
         return [torch.zeros(batch, c, 1, width) for c in chans]
 
-    def next_row(self, state: list[torch.Tensor], above: np.ndarray | None) -> np.ndarray:
+    def next_row(self, state: list[torch.Tensor], above: np.ndarray | None,
+                 activity: np.ndarray) -> np.ndarray:
         """Advance the row stack by one row; returns head-1 accumulators (B, W, hidden).
 
-        `above` is the last decoded row (B, 3, W) uint8, or None before row 0.
+        `above` is the last decoded row (B, 3, W) uint8, or None before row 0; `activity`
+        (B, 3) is the row's `family.row_activity` (unused by models without it).
         """
         if above is None:
             a = torch.zeros_like(state[0])
@@ -114,17 +140,22 @@ class Engine:
             pair = torch.cat([state[i], a], 2)
             state[i] = a
             a = requantise(self.conv(pair, layer, pad_top=False), layer).to(torch.float32)
-        feats = a[:, :, 0].permute(0, 2, 1).to(torch.float64).numpy()  # (B, W, width)
-        return feats @ self._w1_rows + self.head1.bias
+        feats = a[:, :, 0].transpose(1, 2).to(self._w1_rows.dtype)  # (B, W, width)
+        constant = np.zeros((len(feats), 1, self._w1_rows.shape[1])) + self.head1.bias
+        if self._w1_activity is not None:
+            constant += (activity @ self._w1_activity)[:, None]
+        acc = (feats @ self._w1_rows).to(torch.float64)
+        acc += torch.from_numpy(constant)
+        return acc.numpy()
 
     def pixel(self, acc_rows: np.ndarray, row: np.ndarray, x: int) -> np.ndarray:
         """Raw integer outputs (B, OUTPUTS) at column x, given the current row (B, 3, W) so far."""
-        lo = max(0, x - LEFT)
-        left = np.zeros((row.shape[0], LEFT, 4))
-        left[:, : x - lo, :3] = row[:, :, lo:x][:, :, ::-1].transpose(0, 2, 1)
-        left[:, : x - lo, 3] = 255.0
-        h = requantise_np(acc_rows[:, x] + left.reshape(len(left), -1) @ self._w1_left,
-                          self.head1)
+        n = min(x, self.left)  # pixels to the left that exist
+        acc = acc_rows[:, x] + self._valid[n]
+        if n:
+            pixels = row[:, :, x - n : x].transpose(0, 2, 1).reshape(len(row), 3 * n)
+            acc = acc + pixels @ self._left[n]
+        h = requantise_np(acc, self.head1)
         h = requantise_np(h @ self._w2 + self.head2.bias, self.head2)
         return requantise_np(h @ self._w3 + self.out.bias, self.out).astype(np.int64)
 

@@ -26,6 +26,7 @@ from rowcast.network import Predictor
 FORMAT = "rowcast-model"
 VERSION = 1
 MULT_BITS = 16  # requantisation multipliers are below 2**16
+MAX_SHIFT = 52  # so that requantisation's rounding term and sum stay exact in float64
 EXACT_F32 = 1 << 24  # integers below this add exactly in float32
 EXACT_F64 = 1 << 53
 DEFAULT_MODEL = "default.safetensors"
@@ -69,6 +70,14 @@ class IntModel:
     def width(self) -> int:
         return self.card["architecture"]["width"]
 
+    @property
+    def left(self) -> int:
+        return self.card["architecture"]["left"]
+
+    @property
+    def activity(self) -> bool:
+        return self.card["architecture"].get("activity", False)
+
 
 def _round(x: np.ndarray) -> np.ndarray:
     return np.floor(x + 0.5)
@@ -90,8 +99,8 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
             ratio = s / out_steps[i] if layer.relu else s * gains
             shift = int(math.floor(math.log2((2**MULT_BITS - 1) / ratio.max())))
             mult = _round(ratio * 2.0**shift)
-            if not 1 <= shift <= 62:
-                raise ModelError(f"{name}: layer {i} needs shift {shift}, outside 1..62")
+            if not 1 <= shift <= MAX_SHIFT:
+                raise ModelError(f"{name}: layer {i} needs shift {shift}, outside 1..{MAX_SHIFT}")
             tensors[f"layer{i}.weight"] = w_int.astype(np.int8)
             tensors[f"layer{i}.bias"] = b_int.astype(np.int32)
             tensors[f"layer{i}.mult"] = mult.astype(np.int32)
@@ -104,7 +113,8 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
         "version": VERSION,
         "name": name,
         "architecture": {"width": net.width, "hidden": net.hidden, "depth": net.depth,
-                         "left": 3, "outputs": fam.OUTPUTS},
+                         "left": net.left, "outputs": fam.OUTPUTS,
+                         **({"activity": True} if net.activity else {})},
         "layers": specs,
         **(extra or {}),
     }
@@ -149,7 +159,9 @@ def model_from_bytes(data: bytes, origin: str) -> IntModel:
         layers = tuple(_layer(tensors, i, spec) for i, spec in enumerate(card["layers"]))
         arch = card["architecture"]
         expected = arch["depth"] + 3
-        if len(layers) != expected or arch["outputs"] != fam.OUTPUTS:
+        head_inputs = arch["width"] + 4 * arch["left"] + 3 * (arch.get("activity") is True)
+        if (len(layers) != expected or arch["outputs"] != fam.OUTPUTS
+                or layers[arch["depth"]].weight.shape[1] != head_inputs):
             raise ModelError(f"{origin}: architecture does not match this version of rowcast")
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelError(f"{origin}: malformed model card ({exc})") from None
@@ -165,10 +177,23 @@ def _layer(tensors: dict[str, np.ndarray], i: int, spec: dict) -> IntLayer:
     w, b, m = (tensors[f"layer{i}.{k}"] for k in ("weight", "bias", "mult"))
     if w.dtype != np.int8 or b.dtype != np.int32 or m.dtype != np.int32 or w.ndim != 4:
         raise ValueError(f"layer {i} has wrong dtypes")
-    if not (len(b) == len(m) == len(w)) or not 1 <= int(spec["shift"]) <= 62 or (m < 0).any():
+    shift_ok = 1 <= int(spec["shift"]) <= MAX_SHIFT
+    if not (len(b) == len(m) == len(w)) or not shift_ok or (m < 0).any():
         raise ValueError(f"layer {i} has inconsistent shapes or shift")
     return IntLayer(w, b.astype(np.int64), m.astype(np.int64), int(spec["shift"]),
                     bool(spec["relu"]))
+
+
+def bundled_model(sha256: bytes) -> IntModel | None:
+    """The model shipped in the package (current default or an earlier one) with this
+    identity, so archives made with an earlier default keep decoding after an upgrade."""
+    for ref in sorted(resources.files("rowcast").joinpath("models").iterdir(),
+                      key=lambda r: r.name):
+        if ref.name.endswith(".safetensors"):
+            model = model_from_bytes(ref.read_bytes(), f"bundled model {ref.name}")
+            if model.sha256 == sha256:
+                return model
+    return None
 
 
 def load_model(path: Path | None = None) -> IntModel:

@@ -22,6 +22,7 @@ LEVELS = fam.LS_HI - fam.LS_LO + 1  # log-scale levels
 D_MAX = 4 * 254 + 2 - fam.MU_LO
 D_MIN = 2 - fam.MU_HI
 WIDTH = D_MAX - D_MIN + 1  # CDF table columns per level
+MEANS = fam.MU_HI - fam.MU_LO + 1  # means on the grid
 CDF_ONE = 1 << fam.CDF_BITS
 TABLE_TOTAL = CDF_ONE + 256  # what every table sums to
 _CTX = decimal.Context(prec=40, rounding=decimal.ROUND_HALF_UP)
@@ -54,31 +55,38 @@ def logistic_cdf() -> np.ndarray:
 
 
 @functools.cache
-def _bin_masses() -> tuple[np.ndarray, np.ndarray]:
-    """(CDF table flat, strided view of interior bin masses), both float32 (exact: < 2**24).
+def all_tables() -> np.ndarray:
+    """Every table of the grid, (LEVELS * MEANS, 256) float32 (exact: counts < 2**24).
 
-    Row s of the view holds the masses, plus one, of the bins j = 1..254 for one (level, mean):
-    bins sit four quarter pixels apart, so they are every fourth entry of a level's masses.
+    Row level * MEANS + (mu4 - MU_LO) holds the counts for one (level, mean): each interior
+    bin's CDF difference plus one, the end bins the tails plus one. Column k of a level's CDF
+    is distance k + D_MIN; bin j's upper boundary sits at distance 4j + 2 - mu4. 60 MB, built
+    once, so that a table costs one row copy.
     """
     cdf = logistic_cdf()
-    mass = (cdf[:, 4:] - cdf[:, :-4] + 1).astype(np.float32).ravel()  # bins centred at D_MIN+2+i
-    view = as_strided(mass, shape=(mass.size - 4 * 253, 254), strides=(4, 16), writeable=False)
-    return cdf.astype(np.float32).ravel(), view
+    mass = (cdf[:, 4:] - cdf[:, :-4] + 1).astype(np.float32)  # (LEVELS, WIDTH - 4)
+    # interior[level, MU_HI - mu4, j - 1] = mass of bin j: mass[level, MU_HI - mu4 + 4(j-1)]
+    interior = as_strided(mass, shape=(LEVELS, MEANS, 254), strides=(mass.strides[0], 4, 16),
+                          writeable=False)
+    tables = np.empty((LEVELS, MEANS, 256), np.float32)
+    tables[:, :, 0] = cdf[:, MEANS - 1 :: -1] + 1
+    tables[:, :, 1:255] = interior[:, ::-1]
+    tables[:, :, 255] = (CDF_ONE + 1) - cdf[:, 1015 + MEANS : 1015 : -1]
+    tables.flags.writeable = False
+    return tables.reshape(LEVELS * MEANS, 256)
 
 
-def logistic_tables(mu4: np.ndarray, ls8: np.ndarray) -> np.ndarray:
-    """Integer frequency tables (N, 256), as float32, for N subpixels.
+def table_rows(mu4: np.ndarray, ls8: np.ndarray) -> np.ndarray:
+    """The row of `all_tables()` that holds each subpixel's table."""
+    return (ls8 - fam.LS_LO) * MEANS + (mu4 - fam.MU_LO)
+
+
+def logistic_tables(mu4: np.ndarray, ls8: np.ndarray, out: np.ndarray | None = None):
+    """Integer frequency tables (N, 256), as float32, for N subpixels (into `out` if given).
 
     mu4, ls8: integer arrays (N,) on the family's grid. Each count is the logistic's CDF
     difference over the bin (the end bins take the tails) plus one, so every value stays
     codable; each table sums to exactly 2**CDF_BITS + 256, and every entry is an exact
     integer, so the table is the same on every machine.
     """
-    cdf, masses = _bin_masses()
-    level = ls8 - fam.LS_LO
-    at = level * WIDTH - D_MIN - mu4  # flat CDF index of distance 0 for this (level, mean)
-    table = np.empty((len(mu4), 256), np.float32)
-    table[:, 1:255] = masses[level * (WIDTH - 4) + 2 - D_MIN - mu4]
-    table[:, 0] = cdf[at + 2] + 1
-    table[:, 255] = (CDF_ONE + 1) - cdf[at + 4 * 254 + 2]
-    return table
+    return np.take(all_tables(), table_rows(mu4, ls8), axis=0, out=out, mode="clip")

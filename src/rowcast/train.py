@@ -23,7 +23,11 @@ from safetensors.torch import load_file, save_file
 from rowcast.network import Predictor, QConv, log2_likelihood, parameters_from_output
 
 PHOTO_SCALES = (2, 3, 4, 6, 8, 12, 16)
-CUTOUT_SCALES = (1, 2)
+CUTOUT_SCALES = (1, 2, 3)
+VALIDATION = ("volna.png", "animals-mammals-cats-lion-2.png", "food-fruit-kiwi.png",
+              "plants-lavender.png", "vehicles-garbagetruck.png", "animals-birds-pelican.png",
+              "seasonal-christmas-Mince_Pie.png", "household-tools-spade.png",
+              "plants-trees-holm_oak.png")
 IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp"}
 
 
@@ -39,11 +43,14 @@ class Config:
     lr: float = 2e-3
     qat_at: float = 0.35
     gray_fraction: float = 0.15
-    cutout_fraction: float = 0.25
-    validation: tuple[str, ...] = ("grey.png", "volna.png")
+    cutout_fraction: float = 0.5
+    dark_fraction: float = 0.15
+    validation: tuple[str, ...] = VALIDATION
     width: int = 48
     hidden: int = 64
     depth: int = 4
+    left: int = 3
+    activity: bool = False
     seed: int = 0
     threads: int = 2
     resume: str | None = None  # a finished run to continue from (weights, mode, history)
@@ -52,14 +59,15 @@ class Config:
 def command(cfg: Config) -> str:
     """The command line that runs `cfg`."""
     extra = f" --resume {cfg.resume} --lr {cfg.lr:g}" if cfg.resume else ""
+    extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
-def _flatten_alpha(rgba: np.ndarray) -> np.ndarray:
-    """Composite an RGBA cut-out over mid-gray, in integers."""
+def _composite(rgba: np.ndarray, background: np.ndarray) -> np.ndarray:
+    """An RGBA cut-out over an RGB background of the same size, in integers."""
     rgb = rgba[..., :3].astype(np.int32)
     a = rgba[..., 3:4].astype(np.int32)
-    return ((rgb * a + 128 * (255 - a) + 127) // 255).astype(np.uint8)
+    return ((rgb * a + background.astype(np.int32) * (255 - a) + 127) // 255).astype(np.uint8)
 
 
 def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.ndarray]:
@@ -73,39 +81,65 @@ def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.nd
 
 
 def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
-    """(photo pyramids, cut-out pyramids, validation photos) from the training directory.
+    """(photo pyramids RGB, cut-out pyramids RGBA, validation images RGBA) from a directory.
 
     A sub-folder named `cutouts` holds RGBA cut-outs; everything else is a photograph.
-    The photographs named in `cfg.validation` are held out for validation.
+    Images whose file names are in `cfg.validation` are held out for validation.
     """
     photos, cutouts, held = [], [], []
     for path in sorted(Path(cfg.data).rglob("*")):
         if path.suffix.lower() not in IMAGE_SUFFIXES:
             continue
         with Image.open(path) as im:
-            if "cutouts" in path.parts:
-                rgb = Image.fromarray(_flatten_alpha(np.asarray(im.convert("RGBA"))))
-                cutouts += _pyramid(rgb, CUTOUT_SCALES, cfg.crop)
-            elif path.name in cfg.validation:
-                held.append(np.asarray(im.convert("RGB")))
-            else:
-                photos += _pyramid(im.convert("RGB"), PHOTO_SCALES, cfg.crop)
+            rgba = im.convert("RGBA")
+        if path.name in cfg.validation:
+            held.append(np.asarray(rgba))
+        elif "cutouts" in path.parts:
+            cutouts += _pyramid(rgba, CUTOUT_SCALES, cfg.crop)
+        else:
+            photos += _pyramid(rgba.convert("RGB"), PHOTO_SCALES, cfg.crop)
     if not photos:
         raise SystemExit(f"{cfg.data}: no training photographs found")
     return photos, cutouts, held
+
+
+def _random_crop(rng: np.random.Generator, img: np.ndarray, c: int) -> np.ndarray:
+    y = rng.integers(img.shape[0] - c + 1)
+    x = rng.integers(img.shape[1] - c + 1)
+    return img[y : y + c, x : x + c]
+
+
+def _cutout_crop(rng: np.random.Generator, img: np.ndarray, c: int, photos) -> np.ndarray:
+    """A crop that is mostly object (the most opaque of a few tries) over a photo crop."""
+    tries = [_random_crop(rng, img, c) for _ in range(6)]
+    best = max(tries, key=lambda t: int(t[..., 3].sum()))
+    return _composite(best, _random_crop(rng, photos[rng.integers(len(photos))], c))
+
+
+def augment(rng: np.random.Generator, crop: np.ndarray, cfg: Config) -> np.ndarray:
+    """One of the 8 flips/rotations of the square, and sometimes an under-exposure
+    (every value scaled by one factor and rounded), as dim scenes give."""
+    if rng.random() < 0.5:
+        crop = crop[:, ::-1]
+    if rng.random() < 0.5:
+        crop = crop[::-1]
+    if rng.random() < 0.5:
+        crop = crop.transpose(1, 0, 2)
+    if rng.random() < cfg.dark_fraction:
+        gain = rng.uniform(0.2, 0.9)
+        crop = np.floor(crop * gain + 0.5).astype(np.uint8)
+    return crop
 
 
 def sample_batch(rng: np.random.Generator, cfg: Config, photos, cutouts) -> tuple:
     """Random crops (B,3,c,c) and a mask (B,3) that is 0 on channels a gray crop lacks."""
     xs, masks = [], []
     for _ in range(cfg.batch):
-        pool = cutouts if cutouts and rng.random() < cfg.cutout_fraction else photos
-        img = pool[rng.integers(len(pool))]
-        y = rng.integers(img.shape[0] - cfg.crop + 1)
-        x = rng.integers(img.shape[1] - cfg.crop + 1)
-        crop = img[y : y + cfg.crop, x : x + cfg.crop]
-        if rng.random() < 0.5:
-            crop = crop[:, ::-1]
+        if cutouts and rng.random() < cfg.cutout_fraction:
+            crop = _cutout_crop(rng, cutouts[rng.integers(len(cutouts))], cfg.crop, photos)
+        else:
+            crop = _random_crop(rng, photos[rng.integers(len(photos))], cfg.crop)
+        crop = augment(rng, crop, cfg)
         if rng.random() < cfg.gray_fraction:
             crop = np.repeat(gray_of(crop)[..., None], 3, axis=2)
             masks.append([1.0, 0.0, 0.0])
@@ -122,16 +156,19 @@ def gray_of(rgb: np.ndarray) -> np.ndarray:
 
 
 def validation_set(held: list[np.ndarray], size: int = 64) -> torch.Tensor:
-    """Fixed 64-px thumbnails of the held-out photographs at three reductions."""
+    """Fixed 64-px tiles of the held-out images: for each, at reductions 1, 2, 4, 8 and 16,
+    the most opaque tiles on a grid (a photograph is opaque everywhere)."""
     tiles = []
     for arr in held:
         img = Image.fromarray(arr)
-        for s in (4, 8, 16):
-            small = np.asarray(img.reduce(s))
+        for s in (1, 2, 4, 8, 16):
+            small = np.asarray(img.reduce(s)) if s > 1 else arr
             h, w = small.shape[:2]
-            for y in range(0, h - size + 1, max(size, (h - size) // 2 or size)):
-                for x in range(0, w - size + 1, max(size, (w - size) // 3 or size)):
-                    tiles.append(small[y : y + size, x : x + size].transpose(2, 0, 1))
+            grid = [small[y : y + size, x : x + size] for y in range(0, h - size + 1, size)
+                    for x in range(0, w - size + 1, size)]
+            grid = [t for t in grid if t[..., 3].min() == 255]
+            step = max(1, len(grid) // 4)
+            tiles += [t[..., :3].transpose(2, 0, 1) for t in grid[::step][:4]]
     return torch.from_numpy(np.stack(tiles)).float()
 
 
@@ -170,6 +207,29 @@ def calibrate(model: Predictor, x: torch.Tensor) -> None:
         layer.log_step.add_(torch.log(hi / 255.0))
 
 
+@torch.no_grad()
+def grow(model: Predictor, hidden: int, left: int, activity: bool) -> Predictor:
+    """A copy of `model` with a wider head, a longer left window or the activity input that
+    computes the same function, float or quantised: the old units' weights on new inputs
+    start at zero, so training can continue from a finished run."""
+    if (hidden, left, activity) == (model.hidden, model.left, model.activity):
+        return model
+    if model.activity and model.left != left:
+        raise SystemExit("cannot lengthen the left window of a model with the activity input")
+    big = Predictor(model.width, hidden, model.depth, left, activity)
+    big.quant = model.quant
+    for old, new in zip(model.rows, big.rows, strict=True):
+        new.load_state_dict(old.state_dict())
+    for old, new in ((model.head1, big.head1), (model.head2, big.head2), (model.out, big.out)):
+        cout, cin = old.weight.shape[:2]
+        new.weight[:cout, :cin] = old.weight
+        new.weight[:cout, cin:] = 0.0  # old units ignore the new inputs
+        new.bias[:cout] = old.bias
+        if old.log_step is not None:
+            new.log_step.copy_(old.log_step)
+    return big
+
+
 def save_checkpoint(model: Predictor, cfg: Config, state: dict, out: Path) -> None:
     """Float weights in safetensors plus a JSON of config and progress (atomic)."""
     out.mkdir(parents=True, exist_ok=True)
@@ -185,7 +245,8 @@ def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
     """The model and metadata written by `save_checkpoint`."""
     meta = json.loads((out / "checkpoint.json").read_text())
     c = meta["config"]
-    model = Predictor(c["width"], c["hidden"], c["depth"])
+    model = Predictor(c["width"], c["hidden"], c["depth"], c.get("left", 3),
+                      c.get("activity", False))
     model.load_state_dict(load_file(str(out / "checkpoint.safetensors")))
     model.quant = meta["quant"]
     return model, meta
@@ -200,11 +261,14 @@ def train(cfg: Config, log=print) -> Predictor:
     tiles = validation_set(held) if held else None
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
-    model = Predictor(cfg.width, cfg.hidden, cfg.depth)
+    model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity)
     history, commands, step, before = [], [command(cfg)], 0, 0.0
     if cfg.resume:
         model, meta = load_checkpoint(Path(cfg.resume))
-        cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth)
+        model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
+                     cfg.activity or model.activity)
+        cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
+                      left=model.left, activity=model.activity)
         history = meta["state"]["history"]
         commands = meta["state"].get("commands", [command(Config(**{
             **meta["config"], "validation": tuple(meta["config"]["validation"])}))]) + commands
@@ -261,10 +325,16 @@ def main(
     seed: int = 0,
     lr: float = 2e-3,
     resume: str | None = None,
+    threads: int = 2,
+    hidden: int = 64,
+    left: int = 3,
+    activity: bool = False,
 ) -> None:
-    """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]."""
+    """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
+    [--hidden N --left N --activity]; resuming with a larger head grows it (see `grow`)."""
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
-                 resume=resume), log=lambda s: print(s, flush=True))
+                 resume=resume, threads=threads, hidden=hidden, left=left, activity=activity),
+          log=lambda s: print(s, flush=True))
 
 
 if __name__ == "__main__":
