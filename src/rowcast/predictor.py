@@ -5,7 +5,7 @@ Integers travel in float32 (or float64) tensors only because every layer's accum
 checked when the model is loaded, keeps all partial sums exact in that type; so every kernel,
 thread count and summation order gives the same sums. Requantisation is
 out = floor((acc * mult + 2**(shift-1)) / 2**shift), clamped to 0..255 after ReLU layers; it
-runs in float64, where acc * mult < 2**40 and the power-of-two division are exact.
+runs in float64, where every step is exact (see `requantise`).
 """
 
 from __future__ import annotations
@@ -35,16 +35,21 @@ def _weights(layer: IntLayer) -> tuple[torch.Tensor, torch.Tensor]:
 
 
 def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
-    """Requantise exact integer accumulators (B, C, H, W) per channel; float64 result."""
-    mult = torch.from_numpy(layer.mult.astype(np.float64)).view(1, -1, 1, 1)
-    y = torch.floor((acc.to(torch.float64) * mult + 2.0 ** (layer.shift - 1)) * 2.0**-layer.shift)
-    return torch.clamp(y, 0, 255) if layer.relu else y
+    """Requantise exact integer accumulators (B, C, H, W) per channel; float64 result.
+
+    Computed as floor(acc * (mult / 2**shift) + 1/2), which equals the definition above
+    step by step: mult / 2**shift is exact (a power-of-two scale), acc * mult < 2**40 so the
+    product is exact, and the sum is the definition's numerator over 2**shift, exact for
+    shift <= 52 (the model loader's limit).
+    """
+    y = acc.to(torch.float64)  # a new tensor unless acc is float64 already: never a caller's
+    y = y.clone() if y is acc else y
+    y.mul_(torch.from_numpy(_scale(layer)).view(1, -1, 1, 1)).add_(0.5).floor_()
+    return y.clamp_(0.0, 255.0) if layer.relu else y
 
 
 def requantise_np(acc: np.ndarray, layer: IntLayer) -> np.ndarray:
-    """The same for accumulators (N, C) in a float64 numpy array (overwritten), as
-    floor(acc * (mult / 2**shift) + 1/2): each step is exact (a product of < 2**40 scaled by
-    a power of two, then a sum equal to the numerator above over 2**shift, shift <= 52)."""
+    """`requantise` for accumulators (N, C) in a float64 numpy array (overwritten)."""
     acc *= _scale(layer)
     acc += 0.5
     np.floor(acc, out=acc)
@@ -63,8 +68,9 @@ def conv_fast(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.T
     """Accumulators of one layer with torch's kernels, valid under the layer's bound."""
     w, b = _weights(layer)
     kh, kw = layer.weight.shape[2:]
-    a = F.pad(a.to(w.dtype), (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0))
-    return F.conv2d(a, w) + b.view(1, -1, 1, 1)
+    pad = (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0)
+    a = a.to(w.dtype)
+    return F.conv2d(F.pad(a, pad) if any(pad) else a, w, b)
 
 
 def conv_reference(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
