@@ -139,6 +139,7 @@ def _decode(engine: Engine, payloads: list[bytes], planes: int, height: int, wid
     residuals = np.zeros((batch, 3), np.int64)
     misses = np.zeros((batch, 3), np.int64)  # sum of |residual| over the rows so far
     models = _models()
+    decode = type(decoders[0]).decode
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
@@ -146,12 +147,13 @@ def _decode(engine: Engine, payloads: list[bytes], planes: int, height: int, wid
         for x in range(width):
             base = base_at(row, above, x)
             means, ls8, couplings = pixel_params(engine.pixel(acc_rows, row, x), base)
+            scale_rows = table_rows(0, ls8)  # the row of mean 0; the mean adds to it
             for c in range(planes):
                 mu4 = plane_mean(means, couplings, c, residuals)
                 if trace is not None:
                     trace(y, x, c, logistic_tables(mu4, ls8[:, c]))
-                rows = table_rows(mu4, ls8[:, c]).tolist()
-                row[:, c, x] = [d.decode(models[r]) for d, r in zip(decoders, rows, strict=True)]
+                rows = map(models.__getitem__, (scale_rows[:, c] + mu4).tolist())
+                row[:, c, x] = list(map(decode, decoders, rows))
                 residuals[:, c] = row[:, c, x] - base[:, c]
             if planes == 1:
                 row[:, 1:, x] = row[:, :1, x]

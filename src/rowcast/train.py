@@ -372,7 +372,8 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
     tiles = validation_set(held)
     history = meta["state"]["history"]
     summary = {
-        "data": "shared/corpus: photos/ (box-reduced 2-16x) and cutouts/ over gray",
+        "data": "shared/corpus: photos/ (box-reduced 2-16x) and cutouts/ (1-3x, mostly object, "
+                "over photo crops); flips/rotations, 15% under-exposed, 15% gray",
         "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
         "steps": history[-1].get("steps", history[-1].get("step")),
         "minutes": round(history[-1]["minutes"], 1),
