@@ -107,7 +107,9 @@ class Engine:
         self._left = [left[:n][::-1, :3].reshape(3 * n, left.shape[2])
                       for n in range(self.left + 1)]
         self._valid = [255.0 * left[:n, 3].sum(0) for n in range(self.left + 1)]
-        self._w2 = self.head2.weight[:, :, 0, 0].T.astype(np.float64)
+        # float32 where the layer's bound keeps every partial sum exact in it: 10% faster
+        self._w2 = self.head2.weight[:, :, 0, 0].T.astype(
+            np.float32 if self.head2.bound < EXACT_F32 else np.float64)
         self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64)
 
     # -- encoder: everything at once -------------------------------------------------------
@@ -162,7 +164,8 @@ class Engine:
             pixels = row[:, :, x - n : x].transpose(0, 2, 1).reshape(len(row), 3 * n)
             acc = acc + pixels @ self._left[n]
         h = requantise_np(acc, self.head1)
-        h = requantise_np(h @ self._w2 + self.head2.bias, self.head2)
+        acc = (h.astype(self._w2.dtype) @ self._w2).astype(np.float64) + self.head2.bias
+        h = requantise_np(acc, self.head2)
         return requantise_np(h @ self._w3 + self.out.bias, self.out).astype(np.int64)
 
 
