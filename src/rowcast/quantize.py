@@ -76,7 +76,7 @@ class IntModel:
 
     @property
     def activity(self) -> bool:
-        return self.card["architecture"].get("activity", False)
+        return self.card["architecture"].get("activity") is True  # as the loader counts it
 
 
 def _round(x: np.ndarray) -> np.ndarray:

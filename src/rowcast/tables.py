@@ -71,7 +71,8 @@ def all_tables() -> np.ndarray:
     tables = np.empty((LEVELS, MEANS, 256), np.float32)
     tables[:, :, 0] = cdf[:, MEANS - 1 :: -1] + 1
     tables[:, :, 1:255] = interior[:, ::-1]
-    tables[:, :, 255] = (CDF_ONE + 1) - cdf[:, 1015 + MEANS : 1015 : -1]
+    last = 4 * 254  # column of bin 254's upper boundary for mean MU_HI
+    tables[:, :, 255] = (CDF_ONE + 1) - cdf[:, last + MEANS - 1 : last - 1 : -1]
     tables.flags.writeable = False
     return tables.reshape(LEVELS * MEANS, 256)
 
@@ -81,12 +82,12 @@ def table_rows(mu4: np.ndarray, ls8: np.ndarray) -> np.ndarray:
     return (ls8 - fam.LS_LO) * MEANS + (mu4 - fam.MU_LO)
 
 
-def logistic_tables(mu4: np.ndarray, ls8: np.ndarray, out: np.ndarray | None = None):
-    """Integer frequency tables (N, 256), as float32, for N subpixels (into `out` if given).
+def logistic_tables(mu4: np.ndarray, ls8: np.ndarray) -> np.ndarray:
+    """Integer frequency tables (N, 256), as float32, for N subpixels.
 
     mu4, ls8: integer arrays (N,) on the family's grid. Each count is the logistic's CDF
     difference over the bin (the end bins take the tails) plus one, so every value stays
     codable; each table sums to exactly 2**CDF_BITS + 256, and every entry is an exact
     integer, so the table is the same on every machine.
     """
-    return np.take(all_tables(), table_rows(mu4, ls8), axis=0, out=out, mode="clip")
+    return np.take(all_tables(), table_rows(mu4, ls8), axis=0, mode="clip")  # rows in range

@@ -241,6 +241,11 @@ def save_checkpoint(model: Predictor, cfg: Config, state: dict, out: Path) -> No
     (out / "checkpoint.json.tmp").replace(out / "checkpoint.json")
 
 
+def saved_config(meta: dict) -> Config:
+    """The Config a checkpoint was written with (JSON keeps tuples as lists)."""
+    return Config(**{**meta["config"], "validation": tuple(meta["config"]["validation"])})
+
+
 def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
     """The model and metadata written by `save_checkpoint`."""
     meta = json.loads((out / "checkpoint.json").read_text())
@@ -270,8 +275,7 @@ def train(cfg: Config, log=print) -> Predictor:
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity)
         history = meta["state"]["history"]
-        commands = meta["state"].get("commands", [command(Config(**{
-            **meta["config"], "validation": tuple(meta["config"]["validation"])}))]) + commands
+        commands = meta["state"].get("commands", [command(saved_config(meta))]) + commands
         step, before = history[-1]["steps"], history[-1]["minutes"]
         log(f"resuming {cfg.resume} after {step} steps, {before:.1f} min")
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
@@ -367,13 +371,15 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
     net, meta = load_checkpoint(run)
     if not net.quant:
         raise SystemExit(f"{run}: the run has not reached quantisation-aware training")
-    cfg = Config(**{**meta["config"], "validation": tuple(meta["config"]["validation"])})
+    cfg = saved_config(meta)
     _, _, held = load_pools(cfg)
     tiles = validation_set(held)
     history = meta["state"]["history"]
     summary = {
-        "data": "shared/corpus: photos/ (box-reduced 2-16x) and cutouts/ (1-3x, mostly object, "
-                "over photo crops); flips/rotations, 15% under-exposed, 15% gray",
+        "data": f"{cfg.data}: photographs box-reduced {PHOTO_SCALES}x; cutouts/ at "
+                f"{CUTOUT_SCALES}x for {cfg.cutout_fraction:.0%} of the crops (mostly object, "
+                f"over photo crops); flips/rotations, {cfg.dark_fraction:.0%} under-exposed, "
+                f"{cfg.gray_fraction:.0%} gray",
         "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
         "steps": history[-1].get("steps", history[-1].get("step")),
         "minutes": round(history[-1]["minutes"], 1),
