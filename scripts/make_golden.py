@@ -1,10 +1,15 @@
-"""Make the golden files in tests/golden/: a tiny model, two tiny images, their archive.
+"""Make the golden files in tests/golden/: a tiny model, two tiny images, their archives.
 
-Run once; the files are committed, and tests check that today's code still decodes the
-archive and re-encodes the images to the same bytes. Never rerun to make a test pass: a
-difference means old archives would break, which needs a format version bump instead.
+    python scripts/make_golden.py first   # tiny model, images, golden.rowcast (0.1, untuned)
+    python scripts/make_golden.py tuned   # tuned/sky.png, golden-tuned.rowcast (0.2, tuning)
+
+Each part ran once; the files are committed, and tests check that today's code still
+decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
+make a test pass: a difference means old archives would break, which needs a format
+version bump instead. A new coding method gets a new part and a new archive.
 """
 
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +22,9 @@ from rowcast.train import Config, train
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = ROOT / "tests" / "golden"
 
-if __name__ == "__main__":
+
+
+def first() -> None:
     GOLDEN.mkdir(parents=True, exist_ok=True)
     cfg = Config(data=str(ROOT.parent / "shared" / "corpus"), out=str(ROOT / "runs" / "golden"),
                  minutes=0.5, width=8, hidden=8, depth=2, batch=16, qat_at=0.4, validation=())
@@ -29,7 +36,22 @@ if __name__ == "__main__":
     Image.fromarray(orchard[20:32, 8:24]).save(GOLDEN / "images/orchard.png")
     leaf = np.asarray(Image.open(ROOT / "sample_images/frost-sensor/leaf_0600.png"))
     Image.fromarray(leaf[10:17, 5:14]).save(GOLDEN / "images/leaf.png")
-    summary = rowcast.compress([GOLDEN / "images"], GOLDEN / "golden.rowcast",
-                               model=GOLDEN / "tiny.safetensors", force=True)
+    report(rowcast.compress([GOLDEN / "images"], GOLDEN / "golden.rowcast",
+                            model=GOLDEN / "tiny.safetensors", force=True, tune=False))
+
+
+def tuned() -> None:
+    (GOLDEN / "tuned").mkdir(exist_ok=True)
+    sky = np.asarray(Image.open(ROOT / "sample_images/weather-ridge/sky_1300.png"))
+    Image.fromarray(sky[:40, :48]).save(GOLDEN / "tuned/sky.png")
+    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-tuned.rowcast",
+                            model=GOLDEN / "tiny.safetensors"))
+
+
+def report(summary) -> None:
     for e in summary.entries:
         print(e["path"], e["method"], e["bytes"])
+
+
+if __name__ == "__main__":
+    {"first": first, "tuned": tuned}[sys.argv[1]]()

@@ -93,7 +93,7 @@ def test_modes_and_methods_have_the_agreed_codes() -> None:
     """Mode and method codes are part of the format and must not drift."""
     assert MODES["L"] == 1
     assert MODES["RGB"] == 2
-    assert METHODS == {"stored": 0, "model": 1}
+    assert METHODS == {"stored": 0, "model": 1, "tuned": 2}
 
 
 def test_round_trip_keeps_every_field_and_payload(tmp_path: Path) -> None:
@@ -234,6 +234,7 @@ def test_paths_equal_after_normalisation_are_duplicates(tmp_path: Path) -> None:
         (Entry("x", "L", 1, 1, "stored", bytes(31), b"\0"), "checksum is 31 bytes"),
         (Entry("x", "RGB", 2, 1, "stored", bytes(32), b"\0" * 5), "expected 6"),
         (Entry("x", "RGB", 2, 1, "model", bytes(32), b"\0" * 5), "32-bit words"),
+        (Entry("x", "RGB", 2, 1, "tuned", bytes(32), b"\0" * 8), "tuning header"),
     ],
 )
 def test_writer_refuses_invalid_entries(tmp_path: Path, entry: Entry, reason: str) -> None:

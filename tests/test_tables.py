@@ -14,6 +14,7 @@ from rowcast.tables import (
     exact_logistic_cdf,
     logistic_cdf,
     logistic_tables,
+    mixture_tables,
     table_rows,
 )
 
@@ -109,3 +110,20 @@ def test_a_model_built_from_a_table_decodes_what_the_family_encoded():
     models = entropy.Models(all_tables())
     rows = table_rows(mu4, ls8).tolist()
     assert [decoder.decode(models[r]) for r in rows] == symbols.tolist()
+
+
+def test_two_component_tables_are_the_weighted_sum_or_a_pure_table():
+    """weight x table a + (64 - weight) x table b, in exact integers (sum 64 x 65792); a weight
+    of 64 or 0 gives the pure table, which the decoder already holds a model for."""
+    rng = np.random.default_rng(8)
+    n = 300
+    rows_a, rows_b = rng.integers(0, len(all_tables()), (2, n))
+    weight = rng.integers(0, fam.WEIGHT_ONE + 1, n)
+    weight[:5], weight[5:10] = 0, fam.WEIGHT_ONE
+    tables = mixture_tables(rows_a, rows_b, weight)
+    a, b = all_tables()[rows_a].astype(np.int64), all_tables()[rows_b].astype(np.int64)
+    want = weight[:, None] * a + (fam.WEIGHT_ONE - weight[:, None]) * b
+    want[weight == 0], want[weight == fam.WEIGHT_ONE] = b[weight == 0], a[weight == fam.WEIGHT_ONE]
+    assert np.array_equal(tables.astype(np.int64), want) and tables.dtype == np.float32
+    mixed = (weight > 0) & (weight < fam.WEIGHT_ONE)
+    assert np.all(tables[mixed].sum(1, dtype=np.float64) == fam.WEIGHT_ONE * TABLE_TOTAL)

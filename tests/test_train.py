@@ -6,8 +6,9 @@ import pytest
 import torch
 from PIL import Image
 
+from rowcast import family as fam
 from rowcast.codec import decode_batch, encode_batch
-from rowcast.network import Predictor
+from rowcast.network import Predictor, parameters_from_output
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
 from rowcast.train import Config, calibrate, export_checkpoint, grow, load_checkpoint, train
@@ -19,6 +20,26 @@ def smooth_image(seed: int, size: int = 128) -> np.ndarray:
     yy, xx = np.mgrid[:size, :size] / size
     base = np.stack([np.sin(3 * xx + seed), np.cos(2 * yy), xx * yy], axis=2) * 100 + 120
     return np.clip(base + rng.normal(0, 3, base.shape), 0, 255).astype(np.uint8)
+
+
+@pytest.mark.parametrize("quant", [False, True])
+def test_a_second_component_starts_as_a_heavier_tail_of_the_first(quant):
+    """Growing a second component keeps every first-component parameter; the new one has
+    the same means, e times the scale and 3/64 of the weight (a tail, no new mode yet)."""
+    torch.manual_seed(6)
+    net = Predictor(width=8, hidden=8, depth=2, left=3, activity=True)
+    x = torch.randint(0, 256, (2, 3, 12, 12)).float()
+    calibrate(net, x)
+    net.quant = quant
+    big = grow(net, hidden=8, left=3, activity=True, components=2)
+    with torch.no_grad():
+        one = parameters_from_output(net(x), x, quant)
+        two = parameters_from_output(big(x), x, quant)
+    assert torch.equal(one["mu4"], two["mu4"]) and torch.equal(one["ls8"], two["ls8"])
+    assert torch.equal(two["mu4b"], two["mu4"])
+    wider = torch.clamp(two["ls8"] + fam.LS_SCALE, max=fam.LS_HI)
+    assert torch.allclose(two["ls8b"], wider, atol=1 if quant else 1e-4)
+    assert torch.allclose(two["w"], torch.full_like(two["w"], 61.0), atol=0.5)
 
 
 def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
@@ -49,7 +70,8 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     engine = Engine(model)
     image = smooth_image(5, 24).transpose(2, 0, 1).copy()
     (coded,) = encode_batch(engine, [image])
-    assert np.array_equal(decode_batch(engine, [coded.payload], 3, 24, 24)[0], image)
+    decoded = decode_batch(engine, [coded.payload], 3, 24, 24, methods=[coded.method])
+    assert np.array_equal(decoded[0], image)
 
 
 @pytest.mark.parametrize("quant", [False, True])

@@ -107,8 +107,11 @@ def output_name(path: str) -> str:
 
 
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
-             force: bool = False, progress: Progress = None) -> Summary:
+             force: bool = False, progress: Progress = None, tune: bool = True) -> Summary:
     """Compress image files and directories into one archive at `dest` (atomic).
+
+    With `tune` (the default) each image may carry its own scale tuning (`tuning`);
+    without it, entries use the plain "model" method, as rowcast before 0.2 wrote them.
 
     Every input is checked from its header first; then images are read, coded and written
     one at a time, so memory stays bounded however many there are.
@@ -134,10 +137,10 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     def entries() -> Iterator[Entry]:
         for path, name in files:
             planes, mode = _checked(read_planes, path)
-            coded = codec.encode_batch(engine, [planes])[0]
+            coded = codec.encode_batch(engine, [planes], tune=tune)[0]
             raw = planes.tobytes()
-            method, payload = ("model", coded.payload) if len(coded.payload) < len(raw) else (
-                "stored", raw)
+            method, payload = ((coded.method, coded.payload) if len(coded.payload) < len(raw)
+                               else ("stored", raw))
             rows.append({"path": name, "mode": mode, "width": planes.shape[2],
                          "height": planes.shape[1], "method": method, "bytes": len(payload),
                          "cross_entropy_bits": coded.cross_entropy})
@@ -185,7 +188,7 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
         wanted = set(only)
         entries = [e for e in entries if e.path in wanted]
     net = None
-    if any(e.method == "model" for e in entries):
+    if any(e.method != "stored" for e in entries):
         net = (model is None and bundled_model(ident.sha256)) or _model(model)
         if net.sha256 != ident.sha256:
             raise UsageError(f"{src}: was made with model {ident.name} "
@@ -193,19 +196,20 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
                              f"({net.sha256.hex()[:12]}); pass that model with --model")
     engine = Engine(net) if net is not None else None
     groups: dict[tuple, list[IndexEntry]] = defaultdict(list)
-    for e in entries:
-        groups[(e.method, e.mode, e.height, e.width)].append(e)
-    for (method, mode, height, width), members in groups.items():
+    for e in entries:  # coded entries of one size decode together, tuned or not
+        groups[(e.method == "stored", e.mode, e.height, e.width)].append(e)
+    for (stored, mode, height, width), members in groups.items():
         planes = PLANES[mode]
         for start in range(0, len(members), batch):
             part = members[start : start + batch]
             payloads = [_payload(src, e) for e in part]
-            if method == "stored":
+            if stored:
                 decoded = [_stored(src, e, p, planes) for e, p in zip(part, payloads, strict=True)]
             else:
                 try:
                     decoded = codec.decode_batch(engine, payloads, planes, height, width,
-                                                 progress=progress)
+                                                 progress=progress,
+                                                 methods=[e.method for e in part])
                 except (PayloadError, ValueError, RuntimeError) as exc:
                     names = ", ".join(e.path for e in part)
                     raise DataError(f"{src}: cannot decode {names} ({exc})") from None

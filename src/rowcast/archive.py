@@ -22,7 +22,7 @@ VERSION = 1
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
-METHODS: dict[str, int] = {"stored": 0, "model": 1}
+METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2}
 
 _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
@@ -43,6 +43,7 @@ _MAX_PATH_BYTES = 2**16 - 1
 _MAX_DIMENSION = 2**32 - 1
 _DIGEST_BYTES = 32
 _WORD_BYTES = 4
+_TUNING_BYTES = 12  # rowcast.tuning.HEADER_BYTES: the layout is fixed here too
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 
 
@@ -155,7 +156,10 @@ def _check_payload_length(mode: str, method: str, width: int, height: int, lengt
         if length != expected:
             raise _InvalidError(f"stored payload is {length} bytes, expected {expected}")
     elif length % _WORD_BYTES:
-        raise _InvalidError(f"model payload is {length} bytes, not a whole number of 32-bit words")
+        raise _InvalidError(f"{method} payload is {length} bytes, "
+                            "not a whole number of 32-bit words")
+    elif method == "tuned" and length < _TUNING_BYTES:
+        raise _InvalidError(f"tuned payload is {length} bytes, shorter than its tuning header")
 
 
 def _check_entry(entry: Entry) -> str:

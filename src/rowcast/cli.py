@@ -71,7 +71,7 @@ def _bar(label: str, total: int, quiet: bool) -> Iterator:
 
 
 def _rows_total(entries) -> int:
-    return sum(e.height for e in entries if e.method == "model")
+    return sum(e.height for e in entries if e.method != "stored")
 
 
 @app.command()

@@ -9,17 +9,20 @@ same-sized images at once, each with its own range decoder.
 from __future__ import annotations
 
 import functools
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+import torch
 from threadpoolctl import threadpool_limits
 
-from rowcast import entropy
+from rowcast import entropy, tuning
 from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
-from rowcast.tables import TABLE_TOTAL, all_tables, logistic_tables, table_rows
+from rowcast.tables import TABLE_TOTAL, all_tables, mixture_tables, table_rows
+from rowcast.workers import run_split
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
 PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
@@ -27,10 +30,12 @@ PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activati
 
 @dataclass(frozen=True)
 class Coded:
-    """One image's payload and the model's cross-entropy for it, in bits."""
+    """One image's payload, its method ("tuned": 12 bytes of scale tuning, then the coder's
+    words; "model": the words alone) and the model's cross-entropy for it, in bits."""
 
     payload: bytes
     cross_entropy: float
+    method: str = "model"
 
 
 def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
@@ -46,16 +51,52 @@ def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
                       np.maximum(left, up))
 
 
-def pixel_params(out: np.ndarray, base: np.ndarray) -> tuple:
-    """(means before the channel masks, log-scales, couplings), each (N, 3), for N pixels.
+@dataclass(frozen=True)
+class Params:
+    """Integer parameters of N pixels, each (N, 3): means before the channel masks,
+    log-scales and couplings; with a second component, its means and log-scales and the
+    first component's weight (0..64), else None."""
 
-    out: raw outputs (N, OUTPUTS); base: the base prediction (N, 3).
-    """
-    means = out[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_SCALE * base
-    ls8 = np.minimum(np.maximum(out[:, 1 : 2 * fam.CHANNELS : 2], fam.LS_LO), fam.LS_HI)
-    couplings = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX),
-                           fam.COUPLE_MAX)
-    return means, ls8, couplings
+    means: np.ndarray
+    ls8: np.ndarray
+    couplings: np.ndarray
+    means_b: np.ndarray | None = None
+    ls8_b: np.ndarray | None = None
+    weight: np.ndarray | None = None
+
+
+def _log_scales(raw: np.ndarray) -> np.ndarray:
+    return np.minimum(np.maximum(raw, fam.LS_LO), fam.LS_HI)
+
+
+_PLANE = np.arange(fam.CHANNELS)
+
+
+def _offsets(tune: np.ndarray, ls8: np.ndarray) -> np.ndarray:
+    """Each subpixel's tuning offset (N, 3) from an offset map: one image's (3, levels)
+    for all N pixels, or a batch's (N, 3, levels) with one pixel per image."""
+    if tune.ndim == 2:
+        return tune[_PLANE, ls8 - fam.LS_LO]
+    return tune[np.arange(len(ls8))[:, None], _PLANE, ls8 - fam.LS_LO]
+
+
+def pixel_params(out: np.ndarray, base: np.ndarray, tune: np.ndarray | None = None) -> Params:
+    """The parameters of N pixels from raw outputs (N, outputs) and the base prediction
+    (N, 3); `tune` is an offset map of `tuning` (None: untuned)."""
+    lead = fam.MU_SCALE * base
+    ls8 = _log_scales(out[:, 1 : 2 * fam.CHANNELS : 2])
+    shift = None if tune is None else _offsets(tune, ls8)
+    params = Params(out[:, 0 : 2 * fam.CHANNELS : 2] + lead,
+                    ls8 if shift is None else tuning.apply(ls8, shift),
+                    np.minimum(np.maximum(out[:, 2 * fam.CHANNELS : fam.OUTPUTS],
+                                          -fam.COUPLE_MAX), fam.COUPLE_MAX))
+    if out.shape[1] == fam.OUTPUTS:
+        return params
+    mix = out[:, fam.OUTPUTS :]
+    ls8_b = _log_scales(mix[:, 1::3])
+    return Params(params.means, params.ls8, params.couplings, mix[:, 0::3] + lead,
+                  ls8_b if shift is None else tuning.apply(ls8_b, shift),
+                  np.minimum(np.maximum(mix[:, 2::3], 0), fam.WEIGHT_ONE))
 
 
 def plane_mean(means: np.ndarray, couplings: np.ndarray, c: int,
@@ -71,23 +112,40 @@ def plane_mean(means: np.ndarray, couplings: np.ndarray, c: int,
     return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
 
 
-def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
-                 planes: int) -> tuple[np.ndarray, np.ndarray]:
+def plane_rows(p: Params, c: int, residuals: np.ndarray) -> tuple:
+    """(table rows of the first component, of the second or None) for plane c (N,)."""
+    rows = table_rows(plane_mean(p.means, p.couplings, c, residuals), p.ls8[:, c])
+    if p.weight is None:
+        return rows, None
+    return rows, table_rows(plane_mean(p.means_b, p.couplings, c, residuals), p.ls8_b[:, c])
+
+
+def plane_tables(p: Params, c: int, residuals: np.ndarray) -> np.ndarray:
+    """The frequency tables (N, 256) of plane c."""
+    rows, rows_b = plane_rows(p, c, residuals)
+    if rows_b is None:
+        return np.take(all_tables(), rows, axis=0)
+    return mixture_tables(rows, rows_b, p.weight[:, c])
+
+
+def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
+                 tune: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(symbols (N*P,), tables (N*P, 256)) in coding order for a band of image rows.
 
-    out: raw outputs (h, W, OUTPUTS); rgb and base: (3, h, W) for the same rows.
+    out: raw outputs (h, W, outputs); rgb and base: (3, h, W) for the same rows; tune:
+    the image's offset map (3, levels), or None.
     """
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
-    means, ls8, couplings = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
+    p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base, tune)
     residuals = known - flat_base
-    mu4 = np.stack([plane_mean(means, couplings, c, residuals) for c in range(planes)], axis=1)
-    return known[:, :planes].reshape(-1), logistic_tables(mu4.reshape(-1),
-                                                          ls8[:, :planes].reshape(-1))
+    tables = np.stack([plane_tables(p, c, residuals) for c in range(planes)], axis=1)
+    return known[:, :planes].reshape(-1), tables.reshape(-1, 256)
 
 
-def encode_batch(engine: Engine, images: list[np.ndarray]) -> list[Coded]:
-    """Payloads for same-sized images, each (P, H, W) uint8."""
+def encode_batch(engine: Engine, images: list[np.ndarray], tune: bool = True) -> list[Coded]:
+    """Payloads for same-sized images, each (P, H, W) uint8; with `tune`, each image gets
+    the scale tuning that shortens it (method "tuned") if that saves more than it takes."""
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -95,33 +153,83 @@ def encode_batch(engine: Engine, images: list[np.ndarray]) -> list[Coded]:
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes))
+            coded.append(_encode_one(out, rgb, planes, tune))
     return coded
 
 
-def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int) -> Coded:
+def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
+                  planes: int) -> np.ndarray | None:
+    """The offsets (3, bands) of `tuning` that give this image the shortest code, or None
+    when they would not save the 12 bytes that they take."""
+    known = rgb.reshape(3, -1).T.astype(np.int64)
+    flat_base = base.reshape(3, -1).T
+    p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
+    residuals = known - flat_base
+    flat = all_tables().reshape(-1)
+    means = [(plane_mean(p.means, p.couplings, c, residuals),
+              None if p.weight is None else plane_mean(p.means_b, p.couplings, c, residuals))
+             for c in range(planes)]
+
+    def count(mu4: np.ndarray, ls8: np.ndarray, c: int) -> np.ndarray:
+        return flat[table_rows(mu4, ls8) * 256 + known[:, c]].astype(np.float64)
+
+    def cost(c: int, d: int) -> np.ndarray:
+        mu4, mu4_b = means[c]
+        first = count(mu4, tuning.apply(p.ls8[:, c], d), c)
+        if mu4_b is None:
+            return -np.log2(first / TABLE_TOTAL)
+        second = count(mu4_b, tuning.apply(p.ls8_b[:, c], d), c)
+        w = p.weight[:, c]
+        mixed = (w * first + (fam.WEIGHT_ONE - w) * second) / (fam.WEIGHT_ONE * TABLE_TOTAL)
+        pure = np.where(w == fam.WEIGHT_ONE, first, second) / TABLE_TOTAL
+        return -np.log2(np.where(w % fam.WEIGHT_ONE == 0, pure, mixed))
+
+    offsets, saved = tuning.choose(cost, p.ls8[:, :planes])
+    return offsets if saved > 8 * tuning.HEADER_BYTES else None
+
+
+def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, tune: bool) -> Coded:
     coder, bits = entropy.encoder(), 0.0
     base = base_prediction(rgb)
+    offsets = choose_tuning(out, rgb, base, planes) if tune else None
+    shift = None if offsets is None else tuning.offset_map(offsets)
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
-        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes)
+        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, shift)
         entropy.encode(coder, symbols, tables)
-        bits += entropy.cross_entropy_bits(symbols, tables, total=TABLE_TOTAL)
-    return Coded(entropy.finish(coder), bits)
+        total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
+        bits += entropy.cross_entropy_bits(symbols, tables, total=total)
+    if offsets is None:
+        return Coded(entropy.finish(coder), bits)
+    return Coded(tuning.pack(offsets) + entropy.finish(coder), bits, "tuned")
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
-                 width: int, progress=None, trace=None) -> np.ndarray:
+                 width: int, progress=None, trace=None, workers: int | None = None,
+                 methods: Sequence[str] | str = "model") -> np.ndarray:
     """Decode same-sized images together; returns (B, P, H, W) uint8.
 
-    `progress`, if given, is called with 1 after each row; `trace`, if given, with
-    (y, x, c, tables) for every subpixel, so tests can compare with the encoder's tables.
-    numpy's BLAS runs single-threaded here: the per-pixel products are tiny, and its
-    threads would only contend with torch's for the same cores (measured: 1.7x slower).
+    `methods` names each payload's method ("model" or "tuned"), or one for all: an untuned
+    image is a tuned one with zero offsets, so both kinds share a batch.
+    The batch is shared by `workers` single-threaded processes (default: torch's thread
+    count; see `workers`), each decoding its images together. `progress`, if given, is
+    called with the number of images of a part after each of its rows; `trace`, if given,
+    with (y, x, c, tables) for every subpixel (in this process), so tests can compare with
+    the encoder's tables. numpy's BLAS runs single-threaded here: the per-pixel products
+    are tiny, and its threads would only contend for the same cores (measured: 1.7x slower).
     """
-    with threadpool_limits(limits=1, user_api="blas"):
-        return _decode(engine, payloads, planes, height, width, progress, trace)
+    n = torch.get_num_threads() if workers is None else workers
+    n = 1 if trace is not None else max(1, min(n, len(payloads)))
+    cuts = [len(payloads) * i // n for i in range(n + 1)]
+    methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
+
+    def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
+        with threadpool_limits(limits=1, user_api="blas"):
+            return _decode(engine, *part, planes, height, width, report, trace)
+
+    parts = [(payloads[a:b], methods[a:b]) for a, b in zip(cuts, cuts[1:], strict=False)]
+    return np.concatenate(run_split(run, parts, progress))
 
 
 @functools.cache
@@ -130,8 +238,27 @@ def _models() -> entropy.Models:
     return entropy.Models(all_tables())
 
 
-def _decode(engine: Engine, payloads: list[bytes], planes: int, height: int, width: int,
-            progress, trace) -> np.ndarray:
+def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
+    """(coder words of each payload, the batch's offset map (B, 3, levels) or None)."""
+    if all(m == "model" for m in methods):
+        return payloads, None
+    offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
+    words = []
+    for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
+        if method == "tuned":
+            if len(payload) < tuning.HEADER_BYTES:
+                raise entropy.PayloadError("payload is shorter than its tuning header")
+            offsets[i] = tuning.unpack(payload[: tuning.HEADER_BYTES])
+            payload = payload[tuning.HEADER_BYTES :]
+        elif method != "model":
+            raise ValueError(f"no decoder for method {method!r}")
+        words.append(payload)
+    return words, tuning.offset_map(offsets)
+
+
+def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
+            height: int, width: int, progress, trace) -> np.ndarray:
+    payloads, shift = _split_tuning(payloads, methods)
     decoders = [entropy.decoder(p) for p in payloads]
     batch = len(payloads)
     img = np.zeros((batch, 3, height, width), np.uint8)
@@ -146,19 +273,39 @@ def _decode(engine: Engine, payloads: list[bytes], planes: int, height: int, wid
         row = img[:, :, y]
         for x in range(width):
             base = base_at(row, above, x)
-            means, ls8, couplings = pixel_params(engine.pixel(acc_rows, row, x), base)
-            scale_rows = table_rows(0, ls8)  # the row of mean 0; the mean adds to it
+            p = pixel_params(engine.pixel(acc_rows, row, x), base, shift)
             for c in range(planes):
-                mu4 = plane_mean(means, couplings, c, residuals)
                 if trace is not None:
-                    trace(y, x, c, logistic_tables(mu4, ls8[:, c]))
-                rows = map(models.__getitem__, (scale_rows[:, c] + mu4).tolist())
-                row[:, c, x] = list(map(decode, decoders, rows))
+                    trace(y, x, c, plane_tables(p, c, residuals))
+                rows, rows_b = plane_rows(p, c, residuals)
+                if rows_b is None:
+                    found = map(models.__getitem__, rows.tolist())
+                    row[:, c, x] = list(map(decode, decoders, found))
+                else:
+                    row[:, c, x] = _decode_mixed(decoders, models, rows, rows_b, p.weight[:, c])
                 residuals[:, c] = row[:, c, x] - base[:, c]
             if planes == 1:
                 row[:, 1:, x] = row[:, :1, x]
                 residuals[:, 1:] = residuals[:, :1]
             misses += np.abs(residuals)
-        if progress is not None:
-            progress(1)
+        progress(batch)
     return img[:, :planes]
+
+
+def _decode_mixed(decoders: list, models: entropy.Models, rows: np.ndarray,
+                  rows_b: np.ndarray, weight: np.ndarray) -> list[int]:
+    """One symbol from each decoder under its two-component table: a prebuilt model where
+    one component has all the weight, else a model built from the mixed table."""
+    decode = type(decoders[0]).decode
+    if not (weight % fam.WEIGHT_ONE == 0).any():  # the usual case: mixed everywhere
+        tables = all_tables()
+        mixed = np.take(tables, rows, axis=0)
+        mixed *= weight.astype(np.float32)[:, None]
+        other = np.take(tables, rows_b, axis=0)
+        other *= (fam.WEIGHT_ONE - weight).astype(np.float32)[:, None]
+        mixed += other
+        return list(map(decode, decoders, map(entropy.model_of, mixed)))
+    tables = mixture_tables(rows, rows_b, weight)
+    pure = np.where(weight == fam.WEIGHT_ONE, rows, np.where(weight == 0, rows_b, -1)).tolist()
+    return [decode(dec, models[r]) if r >= 0 else decode(dec, entropy.model_of(t))
+            for dec, r, t in zip(decoders, pure, tables, strict=True)]

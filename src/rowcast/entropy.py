@@ -39,6 +39,11 @@ def decoder(payload: bytes):
     return constriction.stream.queue.RangeDecoder(np.frombuffer(payload, "<u4").astype(np.uint32))
 
 
+def model_of(table: np.ndarray):
+    """The coder's model of one table (256,)."""
+    return constriction.stream.model.Categorical(table, perfect=False)
+
+
 class Models(dict):
     """constriction models of the rows of a table array, each built on first use.
 
@@ -52,7 +57,7 @@ class Models(dict):
         self.tables = tables
 
     def __missing__(self, row: int):
-        model = constriction.stream.model.Categorical(self.tables[row], perfect=False)
+        model = model_of(self.tables[row])
         self[row] = model
         return model
 

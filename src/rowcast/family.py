@@ -7,8 +7,10 @@ residuals of the channels already known (value minus base), through coefficients
 These constants define that grid; changing any of them changes every archive, so they are
 part of the format (docs/FORMAT.md).
 
-One component, not a mixture: a mixture multiplies the cost of every 256-entry table by the
-number of components, and the tables dominate coding time on a CPU (see DEVELOPERS.md).
+A model may ask for a second component per subpixel (its card says `"components": 2`): a
+second mean (moved by the same channel coupling) and log-scale, and the first component's
+weight in 64ths. Star fields, specular spots and edges are bimodal (the pixel continues the
+neighbour or drops back to the background), which one logistic cannot say.
 """
 
 import numpy as np
@@ -36,9 +38,20 @@ CDF_BITS = 16  # the CDF is an integer in [0, 2**16]; each value's count gets +1
 OUTPUTS = 2 * CHANNELS + 3
 
 
-def output_gains() -> list[float]:
+WEIGHT_ONE = 64  # the first component's weight is an integer 0..64 (64ths)
+# A second component adds, per channel, (mean, log-scale, first component's weight).
+MIX_OUTPUTS = 3 * CHANNELS
+
+
+def outputs(components: int) -> int:
+    """Number of raw outputs of a model with 1 or 2 components."""
+    return OUTPUTS + MIX_OUTPUTS * (components - 1)
+
+
+def output_gains(components: int = 1) -> list[float]:
     """Factor from the last layer's real output to each integer parameter, in layout order."""
-    return [MU_GAIN, LS_SCALE] * CHANNELS + [COUPLE_SCALE] * 3
+    return ([MU_GAIN, LS_SCALE] * CHANNELS + [COUPLE_SCALE] * 3
+            + [MU_GAIN, LS_SCALE, WEIGHT_ONE] * CHANNELS * (components - 1))
 
 
 def base_prediction(img: np.ndarray) -> np.ndarray:

@@ -10,7 +10,8 @@ Raster order, and inside a pixel R, then G, then B. The network has two parts:
   emits for each channel a discretised logistic. It may also see the row's *activity*: how
   far the base prediction missed on all rows above, a running measure of the image's noise.
   The channel masks are the last step: G's mean moves linearly with R, and B's with R and
-  G, as decoded values become known.
+  G, as decoded values become known. A model may emit a second logistic per subpixel, mixed
+  with the first by a weight in 64ths (`family`).
 
 Every layer is quantisation-aware: weights round to int8 per output channel, activations to
 uint8 with a learned step, the output parameters to the grid of `family`. What training sees
@@ -87,15 +88,15 @@ class Predictor(nn.Module):
     """Row stack + pixel head; see the module docstring."""
 
     def __init__(self, width: int = 48, hidden: int = 64, depth: int = 4,
-                 left: int = LEFT, activity: bool = False) -> None:
+                 left: int = LEFT, activity: bool = False, components: int = 1) -> None:
         super().__init__()
         self.width, self.hidden, self.depth, self.left = width, hidden, depth, left
-        self.activity = activity
+        self.activity, self.components = activity, components
         rows = [QConv(4, width, 2, 5)] + [QConv(width, width, 2, 3) for _ in range(depth - 1)]
         self.rows = nn.ModuleList(rows)
         self.head1 = QConv(width + 4 * left + 3 * activity, hidden, 1, 1)
         self.head2 = QConv(hidden, hidden, 1, 1)
-        self.out = QConv(hidden, fam.OUTPUTS, 1, 1, relu=False)
+        self.out = QConv(hidden, fam.outputs(components), 1, 1, relu=False)
         with torch.no_grad():  # start at a scale of ~4.5 px around the base prediction
             self.out.bias[1 : 2 * fam.CHANNELS : 2] = 1.5
         self.quant = False
@@ -149,31 +150,47 @@ def activity_planes(x: torch.Tensor) -> torch.Tensor:
     return act.unsqueeze(-1).expand(-1, -1, -1, x.shape[-1])
 
 
+def clamp_ste(x: torch.Tensor, lo: float, hi: float) -> torch.Tensor:
+    """Clamp, with the identity's gradient (so that a clamped output can come back)."""
+    return x + (torch.clamp(x, lo, hi) - x).detach()
+
+
 def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dict:
     """Logistic parameters on the integer grid of `family` (rounded when `quant`).
 
     Returns mu4 (B,3,H,W) in quarter pixels (base prediction + correction + channel
-    coupling to the earlier channels' residuals), and ls8 (B,3,H,W).
+    coupling to the earlier channels' residuals), and ls8 (B,3,H,W); with a second
+    component also mu4b, ls8b and the first component's weight w (0..64).
     """
     r = round_ste if quant else (lambda t: t)
-    gains = torch.tensor(fam.output_gains(), dtype=y.dtype).view(1, -1, 1, 1)
+    components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
+    gains = torch.tensor(fam.output_gains(components), dtype=y.dtype).view(1, -1, 1, 1)
     q = r(y * gains)
     base = torch.from_numpy(fam.base_prediction(x.detach().numpy())).to(x.dtype)
-    mu = q[:, 0 : 2 * fam.CHANNELS : 2] + fam.MU_SCALE * base
-    ls = torch.clamp(q[:, 1 : 2 * fam.CHANNELS : 2], fam.LS_LO, fam.LS_HI)
-    cp = torch.clamp(q[:, 2 * fam.CHANNELS :], -fam.COUPLE_MAX, fam.COUPLE_MAX)
+    cp = torch.clamp(q[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX, fam.COUPLE_MAX)
     res = x - base
     shift_g = r(cp[:, 0] * res[:, 0] / 16.0)
     shift_b = r((cp[:, 1] * res[:, 0] + cp[:, 2] * res[:, 1]) / 16.0)
-    mu = torch.stack([mu[:, 0], mu[:, 1] + shift_g, mu[:, 2] + shift_b], 1)
-    return {"mu4": torch.clamp(mu, fam.MU_LO, fam.MU_HI), "ls8": ls}
+    zero = torch.zeros_like(shift_g)
+    shift = torch.stack([zero, shift_g, shift_b], 1)
+
+    def component(mu_raw: torch.Tensor, ls_raw: torch.Tensor) -> tuple:
+        mu = torch.clamp(mu_raw + fam.MU_SCALE * base + shift, fam.MU_LO, fam.MU_HI)
+        return mu, torch.clamp(ls_raw, fam.LS_LO, fam.LS_HI)
+
+    mu4, ls8 = component(q[:, 0 : 2 * fam.CHANNELS : 2], q[:, 1 : 2 * fam.CHANNELS : 2])
+    params = {"mu4": mu4, "ls8": ls8}
+    if components == 2:
+        mix = q[:, fam.OUTPUTS :]
+        params["mu4b"], params["ls8b"] = component(mix[:, 0::3], mix[:, 1::3])
+        params["w"] = clamp_ste(mix[:, 2::3], 0.0, float(fam.WEIGHT_ONE))
+    return params
 
 
-def log2_likelihood(params: dict, x: torch.Tensor) -> torch.Tensor:
-    """log2 of each subpixel's probability (B,3,H,W) under its discretised logistic, with
-    the coder's +1 count per value mirrored so that training sees what the coder pays."""
-    mu = params["mu4"] / fam.MU_SCALE
-    log_s = params["ls8"] / fam.LS_SCALE
+def _bin_log_probability(mu4: torch.Tensor, ls8: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
+    """Natural log of each value's bin under a discretised logistic (end bins take the tails)."""
+    mu = mu4 / fam.MU_SCALE
+    log_s = ls8 / fam.LS_SCALE
     centred = x - mu
     inv_s = torch.exp(-log_s)
     plus = inv_s * (centred + 0.5)
@@ -184,7 +201,20 @@ def log2_likelihood(params: dict, x: torch.Tensor) -> torch.Tensor:
     mid = inv_s * centred
     log_pdf_mid = mid - log_s - 2.0 * F.softplus(mid)
     log_mid = torch.where(delta > 1e-5, torch.log(delta.clamp_min(1e-12)), log_pdf_mid)
-    log_p = torch.where(x < 0.5, log_cdf_plus, torch.where(x > 254.5, log_sf_minus, log_mid))
+    return torch.where(x < 0.5, log_cdf_plus, torch.where(x > 254.5, log_sf_minus, log_mid))
+
+
+def log2_likelihood(params: dict, x: torch.Tensor) -> torch.Tensor:
+    """log2 of each subpixel's probability (B,3,H,W) under its discretised logistic (or the
+    mixture of two), with the coder's +1 count per value mirrored so that training sees what
+    the coder pays."""
     total = 2.0**fam.CDF_BITS
+    log_p = _bin_log_probability(params["mu4"], params["ls8"], x)
     floored = torch.logaddexp(log_p + math.log(total), torch.zeros_like(log_p))
+    if "w" in params:
+        log_pb = _bin_log_probability(params["mu4b"], params["ls8b"], x)
+        floored_b = torch.logaddexp(log_pb + math.log(total), torch.zeros_like(log_pb))
+        w = params["w"] / fam.WEIGHT_ONE
+        return torch.log2(w * floored.exp() + (1.0 - w) * floored_b.exp()) - math.log2(
+            total + 256.0)
     return (floored - math.log(total + 256.0)) / math.log(2.0)

@@ -89,7 +89,7 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
         steps = [s.double().numpy() for s in net.in_steps()]
         layers = net.layers()
         out_steps = [layer.step.double().item() if layer.relu else None for layer in layers]
-        gains = np.array(fam.output_gains(), dtype=np.float64)
+        gains = np.array(fam.output_gains(net.components), dtype=np.float64)
         tensors, specs = {}, []
         for i, (layer, step) in enumerate(zip(layers, steps, strict=True)):
             w_eff = layer.weight.double().numpy() * step.reshape(1, -1, 1, 1)
@@ -113,8 +113,9 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
         "version": VERSION,
         "name": name,
         "architecture": {"width": net.width, "hidden": net.hidden, "depth": net.depth,
-                         "left": net.left, "outputs": fam.OUTPUTS,
-                         **({"activity": True} if net.activity else {})},
+                         "left": net.left, "outputs": fam.outputs(net.components),
+                         **({"activity": True} if net.activity else {}),
+                         **({"components": 2} if net.components == 2 else {})},
         "layers": specs,
         **(extra or {}),
     }
@@ -160,7 +161,10 @@ def model_from_bytes(data: bytes, origin: str) -> IntModel:
         arch = card["architecture"]
         expected = arch["depth"] + 3
         head_inputs = arch["width"] + 4 * arch["left"] + 3 * (arch.get("activity") is True)
-        if (len(layers) != expected or arch["outputs"] != fam.OUTPUTS
+        components = arch.get("components", 1)
+        if (len(layers) != expected or components not in (1, 2)
+                or arch["outputs"] != fam.outputs(components)
+                or layers[-1].weight.shape[0] != arch["outputs"]
                 or layers[arch["depth"]].weight.shape[1] != head_inputs):
             raise ModelError(f"{origin}: architecture does not match this version of rowcast")
     except (KeyError, TypeError, ValueError) as exc:

@@ -91,3 +91,16 @@ def logistic_tables(mu4: np.ndarray, ls8: np.ndarray) -> np.ndarray:
     integer, so the table is the same on every machine.
     """
     return np.take(all_tables(), table_rows(mu4, ls8), axis=0, mode="clip")  # rows in range
+
+
+def mixture_tables(rows_a: np.ndarray, rows_b: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """Tables (N, 256) of two-component subpixels: weight x table a + (64 - weight) x table b
+    for rows of `all_tables()` and weights 0..64; a weight of 64 (or 0) gives table a (or b)
+    itself, so the decoder can use its prebuilt model. Exact: sums are at most 64 x 65792."""
+    tables = all_tables()
+    w = weight.astype(np.float32)[:, None]
+    mixed = tables[rows_a] * w + tables[rows_b] * (fam.WEIGHT_ONE - w)
+    pure_a, pure_b = weight == fam.WEIGHT_ONE, weight == 0
+    mixed[pure_a] = tables[rows_a[pure_a]]
+    mixed[pure_b] = tables[rows_b[pure_b]]
+    return mixed

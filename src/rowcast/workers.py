@@ -1,0 +1,95 @@
+"""Decoding on several cores: a batch is split and its parts decoded in forked processes.
+
+Most of the decoder's time is Python and coder calls that one thread runs; torch's threads
+only help the row stack. So N threads decode fastest as N single-threaded processes, each
+with a share of the batch (measured on 2 cores: 16 thumbnails on one thread take 53% of the
+time of 32 on two). Every split gives the same integers (the exactness contract). Where fork
+is not available (or not safe: macOS, Windows), the parts run one after another here.
+"""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+import signal
+import sys
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import torch
+
+Report = Callable[[int], None]
+
+
+def can_fork() -> bool:
+    """Whether parts may run in forked children on this platform."""
+    return sys.platform.startswith("linux") and "fork" in mp.get_all_start_methods()
+
+
+def _child(fn: Callable, part: Any, conn) -> None:
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles ^C and stops us
+    torch.set_num_threads(1)
+    try:
+        result = fn(part, lambda n: conn.send(("progress", n)))
+        conn.send(("done", result))
+    except Exception as exc:  # handed to the parent, which raises it
+        conn.send(("error", exc))
+    finally:
+        conn.close()
+
+
+def run_split(fn: Callable[[Any, Report], Any], parts: Sequence, progress: Report | None = None
+              ) -> list:
+    """[fn(part, report) for part in parts]: the first part in this process, each other one
+    in a forked child, all on one torch thread; `report(n)` from any of them reaches
+    `progress`. An exception in any part is raised here, and the children are stopped."""
+    def forward(n: int) -> None:
+        if progress is not None:
+            progress(n)
+
+    if len(parts) == 1 or not can_fork():
+        return [fn(part, forward) for part in parts]
+    ctx = mp.get_context("fork")
+    pipes, procs = [], []
+    saved = torch.get_num_threads()
+    try:
+        for part in parts[1:]:
+            receive, send = ctx.Pipe(duplex=False)
+            proc = ctx.Process(target=_child, args=(fn, part, send), daemon=True)
+            proc.start()
+            send.close()
+            pipes.append(receive)
+            procs.append(proc)
+        results: list = [None] * len(parts)
+        pending = set(range(len(pipes)))
+
+        def drain(block: bool) -> None:
+            for i in sorted(pending):
+                while i in pending and (block or pipes[i].poll()):
+                    try:
+                        kind, value = pipes[i].recv()
+                    except EOFError:
+                        raise RuntimeError("a decoding process stopped unexpectedly") from None
+                    if kind == "progress":
+                        forward(value)
+                    elif kind == "error":
+                        raise value
+                    else:
+                        results[i + 1] = value
+                        pending.discard(i)
+
+        def report(n: int) -> None:
+            forward(n)
+            drain(block=False)
+
+        torch.set_num_threads(1)
+        results[0] = fn(parts[0], report)
+        drain(block=True)
+        return results
+    finally:
+        torch.set_num_threads(saved)
+        for proc in procs:
+            if proc.is_alive():
+                proc.terminate()
+            proc.join()
+        for pipe in pipes:
+            pipe.close()
