@@ -190,11 +190,12 @@ def test_same_bytes_with_one_or_two_threads_and_any_grouping(default_engine, rgb
         torch.set_num_threads(1)
         one = [c.payload for c in encode_batch(default_engine, rgb64)]
         torch.set_num_threads(2)
-        two = [c.payload for c in encode_batch(default_engine, rgb64)]
+        two = [c.payload for c in encode_batch(default_engine, rgb64)]  # two processes
+        in_one = [c.payload for c in encode_batch(default_engine, rgb64, workers=1)]
         singly = [encode_batch(default_engine, [im])[0].payload for im in rgb64]
     finally:
         torch.set_num_threads(before)
-    assert one == two == singly
+    assert one == two == in_one == singly
     together = decode_batch(default_engine, one[:5], 3, 64, 64, methods="tuned", workers=1)
     apart = np.concatenate([decode_batch(default_engine, [p], 3, 64, 64, methods="tuned")
                             for p in one[:2]])

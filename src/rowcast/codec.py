@@ -14,7 +14,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import torch
-from threadpoolctl import threadpool_limits
 
 from rowcast import entropy, tuning
 from rowcast import family as fam
@@ -122,10 +121,12 @@ def plane_rows(p: Params, c: int, residuals: np.ndarray) -> tuple:
 
 def plane_tables(p: Params, c: int, residuals: np.ndarray) -> np.ndarray:
     """The frequency tables (N, 256) of plane c."""
-    rows, rows_b = plane_rows(p, c, residuals)
-    if rows_b is None:
-        return np.take(all_tables(), rows, axis=0)
-    return mixture_tables(rows, rows_b, p.weight[:, c])
+    return _tables(*plane_rows(p, c, residuals), p.weight[:, c] if p.weight is not None else None)
+
+
+def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
+    return np.take(all_tables(), rows, axis=0) if rows_b is None else mixture_tables(
+        rows, rows_b, weight)
 
 
 def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
@@ -139,13 +140,28 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
     flat_base = base.reshape(3, -1).T
     p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base, tune)
     residuals = known - flat_base
-    tables = np.stack([plane_tables(p, c, residuals) for c in range(planes)], axis=1)
-    return known[:, :planes].reshape(-1), tables.reshape(-1, 256)
+    rows = [plane_rows(p, c, residuals) for c in range(planes)]  # in coding order:
+    first = np.stack([r[0] for r in rows], axis=1).reshape(-1)  # pixel-major, then plane
+    second = None if p.weight is None else np.stack([r[1] for r in rows], 1).reshape(-1)
+    weight = None if p.weight is None else p.weight[:, :planes].reshape(-1)
+    return known[:, :planes].reshape(-1), _tables(first, second, weight)
 
 
-def encode_batch(engine: Engine, images: list[np.ndarray], tune: bool = True) -> list[Coded]:
+def encode_batch(engine: Engine, images: list[np.ndarray], tune: bool = True,
+                 workers: int | None = None) -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8; with `tune`, each image gets
-    the scale tuning that shortens it (method "tuned") if that saves more than it takes."""
+    the scale tuning that shortens it (method "tuned") if that saves more than it takes.
+    Like decoding, the images are shared by `workers` single-threaded processes (default:
+    torch's thread count); the bytes are the same for any split."""
+    n = torch.get_num_threads() if workers is None else workers
+    n = max(1, min(n, len(images)))
+    cuts = [len(images) * i // n for i in range(n + 1)]
+    parts = [images[a:b] for a, b in zip(cuts, cuts[1:], strict=False)]
+    return [c for part in run_split(lambda part, _: _encode(engine, part, tune), parts)
+            for c in part]
+
+
+def _encode(engine: Engine, images: list[np.ndarray], tune: bool) -> list[Coded]:
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -171,18 +187,17 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
              for c in range(planes)]
 
     def count(mu4: np.ndarray, ls8: np.ndarray, c: int) -> np.ndarray:
-        return flat[table_rows(mu4, ls8) * 256 + known[:, c]].astype(np.float64)
+        return flat[table_rows(mu4, ls8) * 256 + known[:, c]]
 
-    def cost(c: int, d: int) -> np.ndarray:
+    def cost(c: int, d: np.ndarray) -> np.ndarray:
+        """Bits, up to a constant, of plane c's subpixels (N,) for offsets d (K, 1)."""
         mu4, mu4_b = means[c]
         first = count(mu4, tuning.apply(p.ls8[:, c], d), c)
-        if mu4_b is None:
-            return -np.log2(first / TABLE_TOTAL)
-        second = count(mu4_b, tuning.apply(p.ls8_b[:, c], d), c)
-        w = p.weight[:, c]
-        mixed = (w * first + (fam.WEIGHT_ONE - w) * second) / (fam.WEIGHT_ONE * TABLE_TOTAL)
-        pure = np.where(w == fam.WEIGHT_ONE, first, second) / TABLE_TOTAL
-        return -np.log2(np.where(w % fam.WEIGHT_ONE == 0, pure, mixed))
+        if mu4_b is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
+            w = p.weight[:, c].astype(np.float32)
+            first *= w
+            first += (fam.WEIGHT_ONE - w) * count(mu4_b, tuning.apply(p.ls8_b[:, c], d), c)
+        return -np.log2(first)
 
     offsets, saved = tuning.choose(cost, p.ls8[:, :planes])
     return offsets if saved > 8 * tuning.HEADER_BYTES else None
@@ -225,8 +240,7 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
     def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
-        with threadpool_limits(limits=1, user_api="blas"):
-            return _decode(engine, *part, planes, height, width, report, trace)
+        return _decode(engine, *part, planes, height, width, report, trace)
 
     parts = [(payloads[a:b], methods[a:b]) for a, b in zip(cuts, cuts[1:], strict=False)]
     return np.concatenate(run_split(run, parts, progress))

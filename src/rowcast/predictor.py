@@ -68,9 +68,10 @@ def conv_fast(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.T
     """Accumulators of one layer with torch's kernels, valid under the layer's bound."""
     w, b = _weights(layer)
     kh, kw = layer.weight.shape[2:]
-    pad = (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0)
-    a = a.to(w.dtype)
-    return F.conv2d(F.pad(a, pad) if any(pad) else a, w, b)
+    top = kh - 1 if pad_top else 0
+    # conv2d pads top and bottom alike; the first H output rows are the top-padded ones
+    y = F.conv2d(a.to(w.dtype), w, b, padding=(top, kw // 2))
+    return y[:, :, : y.shape[2] - top] if top else y
 
 
 def conv_reference(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
