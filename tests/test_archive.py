@@ -320,6 +320,30 @@ def test_unknown_version_is_refused_by_number(tmp_path: Path) -> None:
         read_payload(dest, IndexEntry("x", "L", 1, 1, "stored", bytes(32), 60, 1))
 
 
+def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -> None:
+    """Writers may still write version 1 (what rowcast 0.1 reads) when no entry is tuned;
+    a tuned entry needs version 2, and a version-1 file that claims one is refused."""
+    dest = tmp_path / "old.rca"
+    write_archive(dest, MODEL, SAMPLE, version=1)
+    assert struct.unpack("<H", dest.read_bytes()[8:10]) == (1,)
+    assert [e.path for e in read_index(dest)[1]] == [e.path for e in SAMPLE]
+    tuned = Entry("t.png", "RGB", 5, 4, "tuned", bytes(32), bytes(16))
+    with pytest.raises(ArchiveError, match="needs a newer format version"):
+        write_archive(tmp_path / "no.rca", MODEL, [tuned], version=1)
+    assert not (tmp_path / "no.rca").exists()
+    new = tmp_path / "new.rca"
+    write_archive(new, MODEL, [tuned])
+    assert struct.unpack("<H", new.read_bytes()[8:10]) == (2,)
+    assert read_index(new)[1][0].method == "tuned"
+    data = bytearray(new.read_bytes())
+    data[8:10] = struct.pack("<H", 1)
+    end = 45 + len(MODEL.name.encode())
+    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
+    new.write_bytes(bytes(data))
+    with pytest.raises(ArchiveError, match="'tuned' is not defined in format version 1"):
+        read_index(new)
+
+
 def test_nonzero_header_flags_are_refused(tmp_path: Path) -> None:
     """Flags this version does not define are refused, even with a valid CRC."""
     dest = write_sample(tmp_path)

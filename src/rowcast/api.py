@@ -110,8 +110,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
              force: bool = False, progress: Progress = None, tune: bool = True) -> Summary:
     """Compress image files and directories into one archive at `dest` (atomic).
 
-    With `tune` (the default) each image may carry its own scale tuning (`tuning`);
-    without it, entries use the plain "model" method, as rowcast before 0.2 wrote them.
+    With `tune` (the default) each image may carry its own scale tuning (`tuning`, format
+    version 2); without it, the archive is format version 1, as rowcast 0.1 wrote it.
 
     Every input is checked from its header first; then images are read, coded and written
     one at a time, so memory stays bounded however many there are.
@@ -150,7 +150,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                         payload)
 
     try:
-        size = archive.write_archive(dest, identity(net), entries(), force=force)
+        size = archive.write_archive(dest, identity(net), entries(), force=force,
+                                     version=archive.VERSION if tune else 1)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
     return Summary(dest, identity(net), rows, size)

@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 MAGIC = b"ROWCAST\xe5"
-VERSION = 1
+VERSION = 2  # what writers write unless told otherwise
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
@@ -27,6 +27,9 @@ METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2}
 _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
 _METHOD_NAMES: dict[int, str] = {code: name for name, code in METHODS.items()}
+# Version 2 added method 2; otherwise the versions are read and written alike.
+VERSION_METHODS: dict[int, frozenset[str]] = {1: frozenset({"stored", "model"}),
+                                              2: frozenset(METHODS)}
 
 _PREFIX = struct.Struct("<8sH")  # magic, version
 _HEADER = struct.Struct("<8sHH32sB")  # magic, version, flags, model SHA-256, model name length
@@ -176,14 +179,14 @@ def _check_entry(entry: Entry) -> str:
     return path
 
 
-def _encode_header(model: ModelIdentity) -> bytes:
+def _encode_header(model: ModelIdentity, version: int) -> bytes:
     """Pack the header (magic, version, flags, model identity) followed by its CRC32."""
     name = _encode_utf8(model.name, "model name")
     if len(name) > _MAX_NAME_BYTES:
         raise _InvalidError(f"model name longer than {_MAX_NAME_BYTES} UTF-8 bytes")
     if len(model.sha256) != _DIGEST_BYTES:
         raise _InvalidError(f"model SHA-256 is {len(model.sha256)} bytes, expected {_DIGEST_BYTES}")
-    head = _HEADER.pack(MAGIC, VERSION, 0, model.sha256, len(name)) + name
+    head = _HEADER.pack(MAGIC, version, 0, model.sha256, len(name)) + name
     return head + _CRC.pack(zlib.crc32(head))
 
 
@@ -202,7 +205,8 @@ def _encode_record(entry: Entry, path: str, offset: int) -> bytes:
     return _PATH_LEN.pack(len(raw_path)) + raw_path + fields
 
 
-def _write_body(out: BinaryIO, header: bytes, entries: Iterable[Entry], dest: Path) -> int:
+def _write_body(out: BinaryIO, header: bytes, entries: Iterable[Entry], dest: Path,
+                version: int) -> int:
     """Stream header, payloads, index and trailer to `out`; return the bytes written."""
     out.write(header)
     offset = len(header)
@@ -213,6 +217,8 @@ def _write_body(out: BinaryIO, header: bytes, entries: Iterable[Entry], dest: Pa
             path = _check_entry(entry)
             if path in seen:
                 raise _InvalidError(f"duplicate path {path!r}")
+            if entry.method not in VERSION_METHODS[version]:
+                raise _InvalidError(f"method {entry.method!r} needs a newer format version")
         except _InvalidError as problem:
             raise ArchiveError(f"{dest}: entry {entry.path!r}: {problem}") from None
         seen.add(path)
@@ -237,23 +243,27 @@ def _fsync_directory(directory: Path) -> None:
 
 
 def write_archive(
-    dest: Path, model: ModelIdentity, entries: Iterable[Entry], force: bool = False
+    dest: Path, model: ModelIdentity, entries: Iterable[Entry], force: bool = False,
+    version: int = VERSION,
 ) -> int:
     """Write an archive atomically, streaming payloads as `entries` yields them.
 
-    Returns the file size. Raises ArchiveError for bad input or an existing dest without force.
+    Returns the file size. Raises ArchiveError for bad input or an existing dest without
+    force. `version` may be an older format version when every entry's method exists there.
     """
     dest = Path(dest)
     if not force and (dest.exists() or dest.is_symlink()):
         raise ArchiveError(f"{dest}: already exists (pass force to overwrite)")
+    if version not in VERSION_METHODS:
+        raise ArchiveError(f"{dest}: cannot write format version {version}")
     try:
-        header = _encode_header(model)
+        header = _encode_header(model, version)
     except _InvalidError as problem:
         raise ArchiveError(f"{dest}: {problem}") from None
     fd, temp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
     try:
         with os.fdopen(fd, "wb") as out:
-            size = _write_body(out, header, entries, dest)
+            size = _write_body(out, header, entries, dest, version)
             out.flush()
             os.fsync(out.fileno())
         os.replace(temp, dest)
@@ -299,16 +309,18 @@ def _read_at(f: BinaryIO, offset: int, count: int) -> bytes:
     return data
 
 
-def _check_prefix(prefix: bytes) -> None:
-    """Check the magic bytes and the format version at the start of the file."""
+def _check_prefix(prefix: bytes) -> int:
+    """Check the magic bytes and the format version at the start of the file; return it."""
     magic = prefix[: len(MAGIC)]
     if magic != MAGIC[: len(magic)]:
         raise _InvalidError("not a rowcast archive")
     if len(prefix) < _PREFIX.size:
         raise _InvalidError("truncated file")
     version = _PREFIX.unpack(prefix)[1]
-    if version != VERSION:
-        raise _InvalidError(f"unsupported format version {version} (this reader knows {VERSION})")
+    if version not in VERSION_METHODS:
+        known = ", ".join(map(str, VERSION_METHODS))
+        raise _InvalidError(f"unsupported format version {version} (this reader knows {known})")
+    return version
 
 
 def _parse_header(header: bytes) -> ModelIdentity:
@@ -322,16 +334,17 @@ def _parse_header(header: bytes) -> ModelIdentity:
     return ModelIdentity(_decode_utf8(body[_HEADER.size :], "model name"), digest)
 
 
-def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int]:
-    """Read and validate the header; return the model identity and where the header ends."""
-    _check_prefix(_read_at(f, 0, min(size, _PREFIX.size)))
+def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int, int]:
+    """Read and validate the header; return the model identity, where the header ends and
+    the format version."""
+    version = _check_prefix(_read_at(f, 0, min(size, _PREFIX.size)))
     if size < _MIN_HEADER + _TRAILER.size:
         raise _InvalidError("truncated file")
     name_length = _HEADER.unpack(_read_at(f, 0, _HEADER.size))[4]
     header_end = _MIN_HEADER + name_length
     if header_end + _TRAILER.size > size:
         raise _InvalidError("truncated file")
-    return _parse_header(_read_at(f, 0, header_end)), header_end
+    return _parse_header(_read_at(f, 0, header_end)), header_end, version
 
 
 def _parse_trailer(trailer: bytes, size: int, header_end: int) -> tuple[int, int, int]:
@@ -413,12 +426,17 @@ def read_index(src: Path) -> tuple[ModelIdentity, list[IndexEntry]]:
     with src.open("rb") as f:
         size = os.fstat(f.fileno()).st_size
         try:
-            model, header_end = _read_header(f, size)
+            model, header_end, version = _read_header(f, size)
             index_offset, index_length, crc = _read_trailer(f, size, header_end)
             index = _read_at(f, index_offset, index_length)
             if zlib.crc32(index) != crc:
                 raise _InvalidError("index CRC mismatch")
-            return model, _parse_index(index, header_end, index_offset)
+            entries = _parse_index(index, header_end, index_offset)
+            for e in entries:
+                if e.method not in VERSION_METHODS[version]:
+                    raise _InvalidError(f"method {e.method!r} is not defined in format "
+                                        f"version {version}")
+            return model, entries
         except _InvalidError as problem:
             raise ArchiveError(f"{src}: {problem}") from None
 
@@ -429,7 +447,7 @@ def read_payload(src: Path, entry: IndexEntry) -> bytes:
     with src.open("rb") as f:
         size = os.fstat(f.fileno()).st_size
         try:
-            _, header_end = _read_header(f, size)
+            _, header_end, _ = _read_header(f, size)
             index_offset = _read_trailer(f, size, header_end)[0]
             if entry.offset < header_end or not 0 <= entry.length <= index_offset - entry.offset:
                 raise _InvalidError(
