@@ -98,17 +98,24 @@ def pixel_params(out: np.ndarray, base: np.ndarray, tune: np.ndarray | None = No
                   np.minimum(np.maximum(mix[:, 2::3], 0), fam.WEIGHT_ONE))
 
 
+def coupling_move(couplings: np.ndarray, c: int, residuals: np.ndarray) -> np.ndarray | int:
+    """How far the channel masks move plane c's means (quarter pixels, (N,)): couplings
+    times the residuals (value minus base, (N, 3)) of the planes before it."""
+    if c == 0:
+        return 0
+    if c == 1:
+        return (couplings[:, 0] * residuals[:, 0] + 8) >> 4
+    return (couplings[:, 1] * residuals[:, 0] + couplings[:, 2] * residuals[:, 1] + 8) >> 4
+
+
+def _on_grid(mu4: np.ndarray) -> np.ndarray:
+    return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
+
+
 def plane_mean(means: np.ndarray, couplings: np.ndarray, c: int,
                residuals: np.ndarray) -> np.ndarray:
-    """mu4 (N,) of plane c: its mean moved by the residuals (value minus base, (N, 3)) of
-    the planes before it (the channel masks), then clamped to the grid."""
-    mu4 = means[:, c]
-    if c == 1:
-        mu4 = mu4 + ((couplings[:, 0] * residuals[:, 0] + 8) >> 4)
-    elif c == 2:
-        shift = couplings[:, 1] * residuals[:, 0] + couplings[:, 2] * residuals[:, 1]
-        mu4 = mu4 + ((shift + 8) >> 4)
-    return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
+    """mu4 (N,) of plane c: its mean moved by the channel masks, clamped to the grid."""
+    return _on_grid(means[:, c] + coupling_move(couplings, c, residuals))
 
 
 def plane_rows(p: Params, c: int, residuals: np.ndarray) -> tuple:
@@ -117,11 +124,6 @@ def plane_rows(p: Params, c: int, residuals: np.ndarray) -> tuple:
     if p.weight is None:
         return rows, None
     return rows, table_rows(plane_mean(p.means_b, p.couplings, c, residuals), p.ls8_b[:, c])
-
-
-def plane_tables(p: Params, c: int, residuals: np.ndarray) -> np.ndarray:
-    """The frequency tables (N, 256) of plane c."""
-    return _tables(*plane_rows(p, c, residuals), p.weight[:, c] if p.weight is not None else None)
 
 
 def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
@@ -281,6 +283,7 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
     misses = np.zeros((batch, 3), np.int64)  # sum of |residual| over the rows so far
     models = _models()
     decode = type(decoders[0]).decode
+    tables = all_tables()
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
@@ -288,15 +291,33 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
         for x in range(width):
             base = base_at(row, above, x)
             p = pixel_params(engine.pixel(acc_rows, row, x), base, shift)
+            level_rows = table_rows(0, p.ls8)  # a table's row is its level's row + its mean
+            if p.weight is not None:
+                level_rows_b = table_rows(0, p.ls8_b)
+                weight_a = p.weight.astype(np.float32)
+                weight_b = fam.WEIGHT_ONE - weight_a
+                pure = (p.weight % fam.WEIGHT_ONE == 0).any(axis=0)
             for c in range(planes):
-                if trace is not None:
-                    trace(y, x, c, plane_tables(p, c, residuals))
-                rows, rows_b = plane_rows(p, c, residuals)
-                if rows_b is None:
+                move = coupling_move(p.couplings, c, residuals)
+                rows = level_rows[:, c] + _on_grid(p.means[:, c] + move)
+                if p.weight is None:
+                    if trace is not None:
+                        trace(y, x, c, tables[rows])
                     found = map(models.__getitem__, rows.tolist())
-                    row[:, c, x] = list(map(decode, decoders, found))
                 else:
-                    row[:, c, x] = _decode_mixed(decoders, models, rows, rows_b, p.weight[:, c])
+                    rows_b = level_rows_b[:, c] + _on_grid(p.means_b[:, c] + move)
+                    if pure[c]:  # the definition, pure tables included
+                        mixed = mixture_tables(rows, rows_b, p.weight[:, c])
+                    else:  # the same numbers, with fewer steps
+                        mixed = np.take(tables, rows, axis=0)
+                        mixed *= weight_a[:, c, None]
+                        other = np.take(tables, rows_b, axis=0)
+                        other *= weight_b[:, c, None]
+                        mixed += other
+                    if trace is not None:
+                        trace(y, x, c, mixed)
+                    found = _mixed_models(models, mixed, rows, rows_b, p.weight[:, c], pure[c])
+                row[:, c, x] = list(map(decode, decoders, found))
                 residuals[:, c] = row[:, c, x] - base[:, c]
             if planes == 1:
                 row[:, 1:, x] = row[:, :1, x]
@@ -306,20 +327,12 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
     return img[:, :planes]
 
 
-def _decode_mixed(decoders: list, models: entropy.Models, rows: np.ndarray,
-                  rows_b: np.ndarray, weight: np.ndarray) -> list[int]:
-    """One symbol from each decoder under its two-component table: a prebuilt model where
-    one component has all the weight, else a model built from the mixed table."""
-    decode = type(decoders[0]).decode
-    if not (weight % fam.WEIGHT_ONE == 0).any():  # the usual case: mixed everywhere
-        tables = all_tables()
-        mixed = np.take(tables, rows, axis=0)
-        mixed *= weight.astype(np.float32)[:, None]
-        other = np.take(tables, rows_b, axis=0)
-        other *= (fam.WEIGHT_ONE - weight).astype(np.float32)[:, None]
-        mixed += other
-        return list(map(decode, decoders, map(entropy.model_of, mixed)))
-    tables = mixture_tables(rows, rows_b, weight)
-    pure = np.where(weight == fam.WEIGHT_ONE, rows, np.where(weight == 0, rows_b, -1)).tolist()
-    return [decode(dec, models[r]) if r >= 0 else decode(dec, entropy.model_of(t))
-            for dec, r, t in zip(decoders, pure, tables, strict=True)]
+def _mixed_models(models: entropy.Models, mixed: np.ndarray, rows: np.ndarray,
+                  rows_b: np.ndarray, weight: np.ndarray, pure: bool):
+    """The coder's model of each two-component table: built from the mixed table, or the
+    prebuilt one of a pure table where one component has all the weight."""
+    if not pure:
+        return map(entropy.model_of, mixed)
+    which = np.where(weight == fam.WEIGHT_ONE, rows, np.where(weight == 0, rows_b, -1)).tolist()
+    return [models[r] if r >= 0 else entropy.model_of(t) for r, t in zip(which, mixed,
+                                                                          strict=True)]
