@@ -27,6 +27,7 @@ from rowcast.quantize import IntModel, ModelError, bundled_model, load_model
 IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif", ".ppm",
                   ".pgm", ".pnm", ".tga"}
 DEFAULT_BATCH = 32
+ENCODE_PIXELS = 1 << 22  # a group being coded holds at most about this many pixels
 
 Progress = Callable[[int], None] | None  # called with the number of images or rows just done
 
@@ -113,8 +114,9 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     With `tune` (the default) each image may carry its own scale tuning (`tuning`, format
     version 2); without it, the archive is format version 1, as rowcast 0.1 wrote it.
 
-    Every input is checked from its header first; then images are read, coded and written
-    one at a time, so memory stays bounded however many there are.
+    Every input is checked from its header first; then images are read and coded in
+    groups of up to 32 (or 4 megapixels), same-sized ones together, and written in input
+    order, so memory stays bounded however many there are.
     """
     dest = Path(dest)
     if dest.is_dir():
@@ -134,10 +136,28 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     engine = Engine(net)
     rows: list[dict] = []
 
-    def entries() -> Iterator[Entry]:
-        for path, name in files:
+    def coded_groups() -> Iterator[tuple[str, np.ndarray, str, codec.Coded]]:
+        """(name, planes, mode, coded) in input order, coded a group at a time."""
+        group: list[tuple[str, np.ndarray, str]] = []
+        for i, (path, name) in enumerate(files):
             planes, mode = _checked(read_planes, path)
-            coded = codec.encode_batch(engine, [planes], tune=tune)[0]
+            group.append((name, planes, mode))
+            pixels = sum(g[1][0].size for g in group)
+            if len(group) == DEFAULT_BATCH or pixels >= ENCODE_PIXELS or i == len(files) - 1:
+                by_shape: dict[tuple, list[int]] = defaultdict(list)
+                for j, (_, planes_j, _) in enumerate(group):
+                    by_shape[planes_j.shape].append(j)
+                coded: dict[int, codec.Coded] = {}
+                for members in by_shape.values():
+                    images = [group[j][1] for j in members]
+                    coded.update(zip(members, codec.encode_batch(engine, images, tune=tune),
+                                     strict=True))
+                for j, (name_j, planes_j, mode_j) in enumerate(group):
+                    yield name_j, planes_j, mode_j, coded[j]
+                group = []
+
+    def entries() -> Iterator[Entry]:
+        for name, planes, mode, coded in coded_groups():
             raw = planes.tobytes()
             method, payload = ((coded.method, coded.payload) if len(coded.payload) < len(raw)
                                else ("stored", raw))
