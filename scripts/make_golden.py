@@ -2,6 +2,7 @@
 
     python scripts/make_golden.py first   # tiny model, images, golden.rowcast (0.1, untuned)
     python scripts/make_golden.py tuned   # tuned/sky.png, golden-tuned.rowcast (0.2, tuning)
+    python scripts/make_golden.py mixture # tiny-mixture model, golden-mixture.rowcast (0.2)
 
 Each part ran once; the files are committed, and tests check that today's code still
 decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
@@ -13,11 +14,14 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import torch
 from PIL import Image
 
 import rowcast
+from rowcast import family as fam
+from rowcast.network import Predictor
 from rowcast.quantize import export, save_model
-from rowcast.train import Config, train
+from rowcast.train import Config, calibrate, train
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = ROOT / "tests" / "golden"
@@ -48,10 +52,26 @@ def tuned() -> None:
                             model=GOLDEN / "tiny.safetensors"))
 
 
+def mixture() -> None:
+    """A two-component model: random weights (calibrated, not trained) are enough to pin the
+    arithmetic; its first-component weights sit mid-range so that tables really mix."""
+    torch.manual_seed(7)
+    net = Predictor(width=8, hidden=8, depth=2, left=3, activity=True, components=2)
+    sky = np.asarray(Image.open(GOLDEN / "tuned/sky.png")).transpose(2, 0, 1)
+    calibrate(net, torch.from_numpy(sky[None].copy()).float())
+    net.quant = True
+    with torch.no_grad():
+        net.out.bias[fam.OUTPUTS + 2 :: 3] = 0.5
+    card, tensors = export(net, "golden-tiny-mixture")
+    save_model(GOLDEN / "tiny-mixture.safetensors", card, tensors)
+    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-mixture.rowcast",
+                            model=GOLDEN / "tiny-mixture.safetensors"))
+
+
 def report(summary) -> None:
     for e in summary.entries:
         print(e["path"], e["method"], e["bytes"])
 
 
 if __name__ == "__main__":
-    {"first": first, "tuned": tuned}[sys.argv[1]]()
+    {"first": first, "tuned": tuned, "mixture": mixture}[sys.argv[1]]()

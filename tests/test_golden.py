@@ -11,6 +11,9 @@ from conftest import GOLDEN, TINY
 from PIL import Image
 
 import rowcast
+from rowcast import family as fam
+from rowcast.predictor import Engine
+from rowcast.quantize import load_model
 
 
 def test_golden_archive_still_decodes_to_the_committed_images():
@@ -41,3 +44,18 @@ def test_tuned_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path)
     out = tmp_path / "again.rowcast"
     rowcast.compress([GOLDEN / "tuned"], out, model=TINY)
     assert out.read_bytes() == (GOLDEN / "golden-tuned.rowcast").read_bytes()
+
+
+def test_two_component_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
+    """A committed two-component model (weights mixing for real) and its archive: same
+    pixels, same bytes."""
+    model = GOLDEN / "tiny-mixture.safetensors"
+    engine = Engine(load_model(model))
+    sky = np.asarray(Image.open(GOLDEN / "tuned" / "sky.png")).transpose(2, 0, 1)
+    weights = engine.parallel(sky[None].copy())[..., fam.OUTPUTS + 2 :: 3]
+    assert ((weights > 0) & (weights < fam.WEIGHT_ONE)).mean() > 0.5
+    ((entry, planes),) = rowcast.decode_entries(GOLDEN / "golden-mixture.rowcast", model=model)
+    assert np.array_equal(planes, sky)
+    out = tmp_path / "again.rowcast"
+    rowcast.compress([GOLDEN / "tuned"], out, model=model)
+    assert out.read_bytes() == (GOLDEN / "golden-mixture.rowcast").read_bytes()
