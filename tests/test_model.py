@@ -18,6 +18,8 @@ from rowcast.network import Predictor, log2_likelihood, parameters_from_output
 from rowcast.predictor import Engine
 from rowcast.quantize import (
     ModelError,
+    bundled_model,
+    bundled_names,
     canonical_bytes,
     export,
     load_model,
@@ -127,3 +129,16 @@ def test_bundled_model_is_small_and_its_integer_form_keeps_within_two_percent():
     training = card["training"]
     assert "shared/corpus" in training["data"]
     assert training["val_integer_bpsp"] <= 1.02 * training["val_float_bpsp"]
+
+
+def test_bundled_models_load_by_name_and_files_win(tmp_path, monkeypatch):
+    """--model takes a file or the name of a bundled model; an existing file of that name
+    wins; an unknown name lists the bundled ones."""
+    assert load_model("default").sha256 == load_model().sha256
+    for name in bundled_names():
+        assert load_model(name).sha256 == bundled_model(load_model(name).sha256).sha256
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "default").write_bytes(TINY.read_bytes())
+    assert load_model("default").name == "golden-tiny"
+    with pytest.raises(ModelError, match="nothere: cannot read .*bundled models: default"):
+        load_model("nothere")

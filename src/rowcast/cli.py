@@ -27,7 +27,8 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_
 out = Console(highlight=False, soft_wrap=True, emoji=False)
 err = Console(stderr=True, highlight=False, soft_wrap=True, emoji=False)
 
-ModelOpt = Annotated[Path | None, typer.Option("--model", help="Model file (default: bundled).")]
+ModelOpt = Annotated[Path | None, typer.Option(
+    "--model", help="Model file, or the name of a bundled model (default: default).")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Machine-readable output.")]
 BatchOpt = Annotated[int, typer.Option("--batch", min=1, help="Images decoded together.")]

@@ -200,13 +200,23 @@ def bundled_model(sha256: bytes) -> IntModel | None:
     return None
 
 
+def bundled_names() -> list[str]:
+    """Names of the models shipped in the package (file names without .safetensors)."""
+    return sorted(r.name.removesuffix(".safetensors")
+                  for r in resources.files("rowcast").joinpath("models").iterdir()
+                  if r.name.endswith(".safetensors"))
+
+
 def load_model(path: Path | None = None) -> IntModel:
-    """A model file, or the bundled default model when `path` is None."""
-    if path is None:
-        ref = resources.files("rowcast").joinpath(f"models/{DEFAULT_MODEL}")
-        return model_from_bytes(ref.read_bytes(), f"bundled model {DEFAULT_MODEL}")
+    """A model file, or the bundled model of that name when no such file exists (`default`
+    when `path` is None)."""
+    path = Path(path if path is not None else DEFAULT_MODEL.removesuffix(".safetensors"))
+    if not path.exists() and path.name == str(path) and path.name in bundled_names():
+        ref = resources.files("rowcast").joinpath(f"models/{path.name}.safetensors")
+        return model_from_bytes(ref.read_bytes(), f"bundled model {path.name}")
     try:
         data = Path(path).read_bytes()
     except OSError as exc:
-        raise ModelError(f"{path}: cannot read model file ({exc.strerror})") from None
+        names = f"; bundled models: {', '.join(bundled_names())}" if path.name == str(path) else ""
+        raise ModelError(f"{path}: cannot read model file ({exc.strerror}){names}") from None
     return model_from_bytes(data, str(path))
