@@ -13,7 +13,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import torch
 
 from rowcast import entropy, tuning
 from rowcast import family as fam
@@ -21,7 +20,7 @@ from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
 from rowcast.tables import TABLE_TOTAL, all_tables, mixture_tables, table_rows
-from rowcast.workers import run_split
+from rowcast.workers import run_split, shares
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
 PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
@@ -153,12 +152,9 @@ def encode_batch(engine: Engine, images: list[np.ndarray], tune: bool = True,
                  workers: int | None = None) -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8; with `tune`, each image gets
     the scale tuning that shortens it (method "tuned") if that saves more than it takes.
-    Like decoding, the images are shared by `workers` single-threaded processes (default:
-    torch's thread count); the bytes are the same for any split."""
-    n = torch.get_num_threads() if workers is None else workers
-    n = max(1, min(n, len(images)))
-    cuts = [len(images) * i // n for i in range(n + 1)]
-    parts = [images[a:b] for a, b in zip(cuts, cuts[1:], strict=False)]
+    Like decoding, a large batch is shared by single-threaded processes (`workers.shares`);
+    the bytes are the same for any split."""
+    parts = [images[a:b] for a, b in shares(len(images), workers)]
     return [c for part in run_split(lambda part, _: _encode(engine, part, tune), parts)
             for c in part]
 
@@ -229,22 +225,20 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
 
     `methods` names each payload's method ("model" or "tuned"), or one for all: an untuned
     image is a tuned one with zero offsets, so both kinds share a batch.
-    The batch is shared by `workers` single-threaded processes (default: torch's thread
-    count; see `workers`), each decoding its images together. `progress`, if given, is
+    A large batch is shared by single-threaded processes (`workers.shares`: `workers` of
+    them if given), each decoding its images together. `progress`, if given, is
     called with the number of images of a part after each of its rows; `trace`, if given,
     with (y, x, c, tables) for every subpixel (in this process), so tests can compare with
     the encoder's tables. numpy's BLAS runs single-threaded here: the per-pixel products
     are tiny, and its threads would only contend for the same cores (measured: 1.7x slower).
     """
-    n = torch.get_num_threads() if workers is None else workers
-    n = 1 if trace is not None else max(1, min(n, len(payloads)))
-    cuts = [len(payloads) * i // n for i in range(n + 1)]
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
     def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
         return _decode(engine, *part, planes, height, width, report, trace)
 
-    parts = [(payloads[a:b], methods[a:b]) for a, b in zip(cuts, cuts[1:], strict=False)]
+    cuts = shares(len(payloads), 1 if trace is not None else workers)
+    parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
     return np.concatenate(run_split(run, parts, progress))
 
 
