@@ -229,8 +229,7 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     them if given), each decoding its images together. `progress`, if given, is
     called with the number of images of a part after each of its rows; `trace`, if given,
     with (y, x, c, tables) for every subpixel (in this process), so tests can compare with
-    the encoder's tables. numpy's BLAS runs single-threaded here: the per-pixel products
-    are tiny, and its threads would only contend for the same cores (measured: 1.7x slower).
+    the encoder's tables. numpy's BLAS runs single-threaded (`workers.run_split`).
     """
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
