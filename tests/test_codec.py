@@ -19,6 +19,7 @@ from rowcast.codec import (
     encode_batch,
     image_tables,
 )
+from rowcast.entropy import PayloadError
 from rowcast.family import row_activity
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.network import Predictor
@@ -270,3 +271,20 @@ def test_any_small_image_round_trips(tiny_engine, planes, height, width, data):
     image = np.array(values, np.uint8).reshape(planes, height, width)
     _, decoded = round_trip(tiny_engine, [image])
     assert np.array_equal(decoded[0], image)
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_damaged_payload_is_a_payload_error_in_any_process(default_engine, rgb64, workers):
+    """Bytes the coder could not have written stop decoding with PayloadError (which the
+    archive reader reports as one line naming the entries), also from a forked process."""
+    images = (rgb64 * 4)[:32]
+    coded = encode_batch(default_engine, images)
+    payloads = [c.payload for c in coded]
+    rng = np.random.default_rng(4)
+    damaged = bytearray(payloads[-1])
+    for i in rng.integers(HEADER_BYTES, len(damaged), 40):
+        damaged[i] ^= 0xFF
+    payloads[-1] = bytes(damaged)
+    with pytest.raises(PayloadError, match="not what its model codes"):
+        decode_batch(default_engine, payloads, 3, 64, 64, workers=workers,
+                     methods=[c.method for c in coded])

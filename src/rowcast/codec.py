@@ -267,7 +267,16 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
             height: int, width: int, progress, trace) -> np.ndarray:
-    payloads, shift = _split_tuning(payloads, methods)
+    try:
+        return _decode_rows(engine, *_split_tuning(payloads, methods), planes, height, width,
+                            progress, trace)
+    except AssertionError:  # constriction's word for data its models cannot have produced
+        raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
+                                   "or another model)") from None
+
+
+def _decode_rows(engine: Engine, payloads: list[bytes], shift: np.ndarray | None, planes: int,
+                 height: int, width: int, progress, trace) -> np.ndarray:
     decoders = [entropy.decoder(p) for p in payloads]
     batch = len(payloads)
     img = np.zeros((batch, 3, height, width), np.uint8)
