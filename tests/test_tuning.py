@@ -1,8 +1,9 @@
-"""Specification of per-image scale tuning: the 12-byte header, the bands, the exact choice."""
+"""Specification of per-image tuning: the 16-byte header, the bands, the choices."""
 
 import itertools
 
 import numpy as np
+import pytest
 
 from rowcast import family as fam
 from rowcast.tuning import (
@@ -12,20 +13,41 @@ from rowcast.tuning import (
     apply,
     band_of,
     choose,
+    choose_couplings,
     offset_map,
     pack,
     unpack,
 )
 
 
-def test_header_holds_every_offset_of_every_band_in_12_bytes():
-    """Offsets -8..7 for 3 channels x 8 bands pack into 12 bytes and come back unchanged."""
+def test_header_holds_every_offset_in_16_bytes():
+    """Scale offsets -8..7 for 3 channels x 8 bands and coupling offsets -128..127 pack into
+    16 bytes and come back unchanged; the last byte is zero and checked."""
     rng = np.random.default_rng(1)
-    for offsets in [rng.integers(-8, 8, (3, 8)) for _ in range(50)] + [np.full((3, 8), -8)]:
-        header = pack(offsets)
-        assert len(header) == HEADER_BYTES == 12
-        assert np.array_equal(unpack(header), offsets)
-    assert pack(np.zeros((3, 8), np.int64)) == bytes(12)
+    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3)) for _ in range(50)]
+    for offsets, couplings in cases + [(np.full((3, 8), -8), np.array([-128, 127, 0]))]:
+        header = pack(offsets, couplings)
+        assert len(header) == HEADER_BYTES == 16 and header[-1] == 0
+        back = unpack(header)
+        assert np.array_equal(back[0], offsets) and np.array_equal(back[1], couplings)
+    assert pack(np.zeros((3, 8), np.int64), np.zeros(3, np.int64)) == bytes(16)
+    with pytest.raises(ValueError, match="reserved byte"):
+        unpack(bytes(15) + b"\1")
+
+
+def test_coupling_choice_never_costs_more_and_finds_a_planted_optimum():
+    """Coordinate search over the candidates: on a separable made-up cost it lands on the
+    planted best offsets, and the bits it reports saved are the true difference."""
+    best = np.array([8, -12, 20])
+
+    def cost(k, offsets):  # plane G depends on coupling 0, plane B on couplings 1 and 2
+        if k == 0:
+            return float((offsets[0] - best[0]) ** 2)
+        return float((offsets[1] - best[1]) ** 2 + (offsets[2] - best[2]) ** 2)
+
+    chosen, saved = choose_couplings(cost)
+    assert chosen.tolist() == best.tolist()
+    assert saved == cost(0, np.zeros(3)) + cost(1, np.zeros(3))
 
 
 def test_bands_split_the_levels_at_the_documented_thresholds():

@@ -46,7 +46,7 @@ _MAX_PATH_BYTES = 2**16 - 1
 _MAX_DIMENSION = 2**32 - 1
 _DIGEST_BYTES = 32
 _WORD_BYTES = 4
-_TUNING_BYTES = 12  # rowcast.tuning.HEADER_BYTES: the layout is fixed here too
+_TUNING_BYTES = 16  # rowcast.tuning.HEADER_BYTES: the layout is fixed here too
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 
 

@@ -28,7 +28,7 @@ PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activati
 
 @dataclass(frozen=True)
 class Coded:
-    """One image's payload, its method ("tuned": 12 bytes of scale tuning, then the coder's
+    """One image's payload, its method ("tuned": 16 bytes of tuning, then the coder's
     words; "model": the words alone) and the model's cross-entropy for it, in bits."""
 
     payload: bytes
@@ -47,6 +47,21 @@ def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
     # the median of left, up and left + up - corner is that last value clamped to [lo, hi]
     return np.minimum(np.maximum(left + up - above[:, :, x - 1], np.minimum(left, up)),
                       np.maximum(left, up))
+
+
+@dataclass(frozen=True)
+class Tune:
+    """An image's tuning (or a batch's, one per image): scale offsets (3, bands) or
+    (B, 3, bands), their map over all levels (`tuning.offset_map`), coupling offsets (3,)
+    or (B, 3)."""
+
+    offsets: np.ndarray
+    couplings: np.ndarray
+    levels: np.ndarray
+
+    @classmethod
+    def of(cls, offsets: np.ndarray, couplings: np.ndarray) -> Tune:
+        return cls(offsets, couplings, tuning.offset_map(offsets))
 
 
 @dataclass(frozen=True)
@@ -78,16 +93,17 @@ def _offsets(tune: np.ndarray, ls8: np.ndarray) -> np.ndarray:
     return tune[np.arange(len(ls8))[:, None], _PLANE, ls8 - fam.LS_LO]
 
 
-def pixel_params(out: np.ndarray, base: np.ndarray, tune: np.ndarray | None = None) -> Params:
+def pixel_params(out: np.ndarray, base: np.ndarray, tune: Tune | None = None) -> Params:
     """The parameters of N pixels from raw outputs (N, outputs) and the base prediction
-    (N, 3); `tune` is an offset map of `tuning` (None: untuned)."""
+    (N, 3), tuned by `tune` (None: untuned)."""
     lead = fam.MU_SCALE * base
     ls8 = _log_scales(out[:, 1 : 2 * fam.CHANNELS : 2])
-    shift = None if tune is None else _offsets(tune, ls8)
+    couplings = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX),
+                           fam.COUPLE_MAX)
+    shift = None if tune is None else _offsets(tune.levels, ls8)
     params = Params(out[:, 0 : 2 * fam.CHANNELS : 2] + lead,
                     ls8 if shift is None else tuning.apply(ls8, shift),
-                    np.minimum(np.maximum(out[:, 2 * fam.CHANNELS : fam.OUTPUTS],
-                                          -fam.COUPLE_MAX), fam.COUPLE_MAX))
+                    couplings if tune is None else tuning.couple(couplings, tune.couplings))
     if out.shape[1] == fam.OUTPUTS:
         return params
     mix = out[:, fam.OUTPUTS :]
@@ -131,11 +147,11 @@ def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | No
 
 
 def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-                 tune: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                 tune: Tune | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(symbols (N*P,), tables (N*P, 256)) in coding order for a band of image rows.
 
     out: raw outputs (h, W, outputs); rgb and base: (3, h, W) for the same rows; tune:
-    the image's offset map (3, levels), or None.
+    the image's tuning, or None.
     """
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
@@ -172,50 +188,58 @@ def _encode(engine: Engine, images: list[np.ndarray], tune: bool) -> list[Coded]
 
 
 def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
-                  planes: int) -> np.ndarray | None:
-    """The offsets (3, bands) of `tuning` that give this image the shortest code, or None
-    when they would not save the 12 bytes that they take."""
+                  planes: int) -> Tune | None:
+    """The tuning that gives this image the shortest code (scale offsets band by band, then
+    coupling offsets), or None when it would not save the bytes of its header."""
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
-    p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
+    raw = out.reshape(-1, out.shape[-1])
+    p = pixel_params(raw, flat_base)
     residuals = known - flat_base
     flat = all_tables().reshape(-1)
-    means = [(plane_mean(p.means, p.couplings, c, residuals),
-              None if p.weight is None else plane_mean(p.means_b, p.couplings, c, residuals))
-             for c in range(planes)]
 
-    def count(mu4: np.ndarray, ls8: np.ndarray, c: int) -> np.ndarray:
-        return flat[table_rows(mu4, ls8) * 256 + known[:, c]]
-
-    def cost(c: int, d: np.ndarray) -> np.ndarray:
-        """Bits, up to a constant, of plane c's subpixels (N,) for offsets d (K, 1)."""
-        mu4, mu4_b = means[c]
-        first = count(mu4, tuning.apply(p.ls8[:, c], d), c)
-        if mu4_b is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
+    def bits(p: Params, c: int, d: np.ndarray | int = 0) -> np.ndarray:
+        """Bits, up to a constant, of plane c's subpixels (N,), levels moved by d ((K, 1))."""
+        move = coupling_move(p.couplings, c, residuals)
+        count = flat[table_rows(_on_grid(p.means[:, c] + move), tuning.apply(p.ls8[:, c], d))
+                     * 256 + known[:, c]]
+        if p.weight is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
             w = p.weight[:, c].astype(np.float32)
-            first *= w
-            first += (fam.WEIGHT_ONE - w) * count(mu4_b, tuning.apply(p.ls8_b[:, c], d), c)
-        return -np.log2(first)
+            count *= w
+            rows_b = table_rows(_on_grid(p.means_b[:, c] + move), tuning.apply(p.ls8_b[:, c], d))
+            count += (fam.WEIGHT_ONE - w) * flat[rows_b * 256 + known[:, c]]
+        return -np.log2(count)
 
-    offsets, saved = tuning.choose(cost, p.ls8[:, :planes])
-    return offsets if saved > 8 * tuning.HEADER_BYTES else None
+    offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes])
+    tune = Tune.of(offsets, np.zeros(3, np.int64))
+    if planes == 3:
+        tuned = pixel_params(raw, flat_base, tune)
+
+        def plane_bits(k: int, moves: np.ndarray) -> float:
+            shifted = Params(tuned.means, tuned.ls8, tuning.couple(tuned.couplings, moves),
+                             tuned.means_b, tuned.ls8_b, tuned.weight)
+            return float(bits(shifted, 1 if k == 0 else 2).sum())
+
+        couplings, more = tuning.choose_couplings(plane_bits)
+        tune, saved = Tune.of(offsets, couplings), saved + more
+    return tune if saved > 8 * tuning.HEADER_BYTES else None
 
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, tune: bool) -> Coded:
     coder, bits = entropy.encoder(), 0.0
     base = base_prediction(rgb)
-    offsets = choose_tuning(out, rgb, base, planes) if tune else None
-    shift = None if offsets is None else tuning.offset_map(offsets)
+    chosen = choose_tuning(out, rgb, base, planes) if tune else None
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
-        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, shift)
+        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, chosen)
         entropy.encode(coder, symbols, tables)
         total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
         bits += entropy.cross_entropy_bits(symbols, tables, total=total)
-    if offsets is None:
+    if chosen is None:
         return Coded(entropy.finish(coder), bits)
-    return Coded(tuning.pack(offsets) + entropy.finish(coder), bits, "tuned")
+    header = tuning.pack(chosen.offsets, chosen.couplings)
+    return Coded(header + entropy.finish(coder), bits, "tuned")
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
@@ -248,21 +272,25 @@ def _models() -> entropy.Models:
 
 
 def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
-    """(coder words of each payload, the batch's offset map (B, 3, levels) or None)."""
+    """(coder words of each payload, the batch's Tune or None)."""
     if all(m == "model" for m in methods):
         return payloads, None
     offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
+    couplings = np.zeros((len(payloads), 3), np.int64)
     words = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
         if method == "tuned":
             if len(payload) < tuning.HEADER_BYTES:
                 raise entropy.PayloadError("payload is shorter than its tuning header")
-            offsets[i] = tuning.unpack(payload[: tuning.HEADER_BYTES])
+            try:
+                offsets[i], couplings[i] = tuning.unpack(payload[: tuning.HEADER_BYTES])
+            except ValueError as exc:
+                raise entropy.PayloadError(str(exc)) from None
             payload = payload[tuning.HEADER_BYTES :]
         elif method != "model":
             raise ValueError(f"no decoder for method {method!r}")
         words.append(payload)
-    return words, tuning.offset_map(offsets)
+    return words, Tune.of(offsets, couplings)
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
@@ -275,7 +303,7 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
                                    "or another model)") from None
 
 
-def _decode_rows(engine: Engine, payloads: list[bytes], shift: np.ndarray | None, planes: int,
+def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, planes: int,
                  height: int, width: int, progress, trace) -> np.ndarray:
     decoders = [entropy.decoder(p) for p in payloads]
     batch = len(payloads)
@@ -292,7 +320,7 @@ def _decode_rows(engine: Engine, payloads: list[bytes], shift: np.ndarray | None
         row = img[:, :, y]
         for x in range(width):
             base = base_at(row, above, x)
-            p = pixel_params(engine.pixel(acc_rows, row, x), base, shift)
+            p = pixel_params(engine.pixel(acc_rows, row, x), base, tune)
             level_rows = table_rows(0, p.ls8)  # a table's row is its level's row + its mean
             if p.weight is not None:
                 level_rows_b = table_rows(0, p.ls8_b)
