@@ -140,5 +140,7 @@ def test_bundled_models_load_by_name_and_files_win(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     (tmp_path / "default").write_bytes(TINY.read_bytes())
     assert load_model("default").name == "golden-tiny"
+    assert load_model().sha256 == bundled_model(load_model().sha256).sha256  # no name: bundled
+    assert load_model().name == "default"
     with pytest.raises(ModelError, match="nothere: cannot read .*bundled models: default"):
         load_model("nothere")

@@ -208,14 +208,16 @@ def bundled_names() -> list[str]:
 
 
 def load_model(path: Path | None = None) -> IntModel:
-    """A model file, or the bundled model of that name when no such file exists (`default`
-    when `path` is None)."""
-    path = Path(path if path is not None else DEFAULT_MODEL.removesuffix(".safetensors"))
-    if not path.exists() and path.name == str(path) and path.name in bundled_names():
-        ref = resources.files("rowcast").joinpath(f"models/{path.name}.safetensors")
-        return model_from_bytes(ref.read_bytes(), f"bundled model {path.name}")
+    """A model file, or the bundled model of that name when no such file exists (the
+    bundled default when `path` is None, whatever the working directory holds)."""
+    path = Path(path) if path is not None else None
+    if path is None or (not path.exists() and path.name == str(path)
+                        and path.name in bundled_names()):
+        name = DEFAULT_MODEL if path is None else f"{path.name}.safetensors"
+        ref = resources.files("rowcast").joinpath(f"models/{name}")
+        return model_from_bytes(ref.read_bytes(), f"bundled model {name}")
     try:
-        data = Path(path).read_bytes()
+        data = path.read_bytes()
     except OSError as exc:
         names = f"; bundled models: {', '.join(bundled_names())}" if path.name == str(path) else ""
         raise ModelError(f"{path}: cannot read model file ({exc.strerror}){names}") from None
