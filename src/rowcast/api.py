@@ -139,10 +139,11 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     def coded_groups() -> Iterator[tuple[str, np.ndarray, str, codec.Coded]]:
         """(name, planes, mode, coded) in input order, coded a group at a time."""
         group: list[tuple[str, np.ndarray, str]] = []
+        pixels = 0
         for i, (path, name) in enumerate(files):
             planes, mode = _checked(read_planes, path)
             group.append((name, planes, mode))
-            pixels = sum(g[1][0].size for g in group)
+            pixels += planes[0].size
             if len(group) == DEFAULT_BATCH or pixels >= ENCODE_PIXELS or i == len(files) - 1:
                 by_shape: dict[tuple, list[int]] = defaultdict(list)
                 for j, (_, planes_j, _) in enumerate(group):
@@ -154,7 +155,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                                      strict=True))
                 for j, (name_j, planes_j, mode_j) in enumerate(group):
                     yield name_j, planes_j, mode_j, coded[j]
-                group = []
+                group, pixels = [], 0
 
     def entries() -> Iterator[Entry]:
         for name, planes, mode, coded in coded_groups():

@@ -127,18 +127,17 @@ def _on_grid(mu4: np.ndarray) -> np.ndarray:
     return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
 
 
-def plane_mean(means: np.ndarray, couplings: np.ndarray, c: int,
-               residuals: np.ndarray) -> np.ndarray:
-    """mu4 (N,) of plane c: its mean moved by the channel masks, clamped to the grid."""
-    return _on_grid(means[:, c] + coupling_move(couplings, c, residuals))
+def plane_rows(p: Params, c: int, residuals: np.ndarray,
+               levels_moved: np.ndarray | None = None) -> tuple:
+    """(table rows of the first component, of the second or None) for plane c (N,), or
+    (K, N) with every level moved by each of K offsets `levels_moved` (K, 1)."""
+    move = coupling_move(p.couplings, c, residuals)
 
+    def rows(means: np.ndarray, ls8: np.ndarray) -> np.ndarray:
+        levels = ls8[:, c] if levels_moved is None else tuning.apply(ls8[:, c], levels_moved)
+        return table_rows(_on_grid(means[:, c] + move), levels)
 
-def plane_rows(p: Params, c: int, residuals: np.ndarray) -> tuple:
-    """(table rows of the first component, of the second or None) for plane c (N,)."""
-    rows = table_rows(plane_mean(p.means, p.couplings, c, residuals), p.ls8[:, c])
-    if p.weight is None:
-        return rows, None
-    return rows, table_rows(plane_mean(p.means_b, p.couplings, c, residuals), p.ls8_b[:, c])
+    return rows(p.means, p.ls8), None if p.weight is None else rows(p.means_b, p.ls8_b)
 
 
 def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
@@ -198,15 +197,14 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
     residuals = known - flat_base
     flat = all_tables().reshape(-1)
 
-    def bits(p: Params, c: int, d: np.ndarray | int = 0) -> np.ndarray:
-        """Bits, up to a constant, of plane c's subpixels (N,), levels moved by d ((K, 1))."""
-        move = coupling_move(p.couplings, c, residuals)
-        count = flat[table_rows(_on_grid(p.means[:, c] + move), tuning.apply(p.ls8[:, c], d))
-                     * 256 + known[:, c]]
-        if p.weight is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
+    def bits(p: Params, c: int, d: np.ndarray | None = None) -> np.ndarray:
+        """Bits, up to a constant, of plane c's subpixels (N,), or (K, N) with the levels
+        moved by each of K offsets d (K, 1)."""
+        rows, rows_b = plane_rows(p, c, residuals, d)
+        count = flat[rows * 256 + known[:, c]]
+        if rows_b is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
             w = p.weight[:, c].astype(np.float32)
             count *= w
-            rows_b = table_rows(_on_grid(p.means_b[:, c] + move), tuning.apply(p.ls8_b[:, c], d))
             count += (fam.WEIGHT_ONE - w) * flat[rows_b * 256 + known[:, c]]
         return -np.log2(count)
 
@@ -324,8 +322,6 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
             level_rows = table_rows(0, p.ls8)  # a table's row is its level's row + its mean
             if p.weight is not None:
                 level_rows_b = table_rows(0, p.ls8_b)
-                weight_a = p.weight.astype(np.float32)
-                weight_b = fam.WEIGHT_ONE - weight_a
                 pure = (p.weight % fam.WEIGHT_ONE == 0).any(axis=0)
             for c in range(planes):
                 move = coupling_move(p.couplings, c, residuals)
@@ -336,14 +332,7 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
                     found = map(models.__getitem__, rows.tolist())
                 else:
                     rows_b = level_rows_b[:, c] + _on_grid(p.means_b[:, c] + move)
-                    if pure[c]:  # the definition, pure tables included
-                        mixed = mixture_tables(rows, rows_b, p.weight[:, c])
-                    else:  # the same numbers, with fewer steps
-                        mixed = np.take(tables, rows, axis=0)
-                        mixed *= weight_a[:, c, None]
-                        other = np.take(tables, rows_b, axis=0)
-                        other *= weight_b[:, c, None]
-                        mixed += other
+                    mixed = mixture_tables(rows, rows_b, p.weight[:, c])
                     if trace is not None:
                         trace(y, x, c, mixed)
                     found = _mixed_models(models, mixed, rows, rows_b, p.weight[:, c], pure[c])

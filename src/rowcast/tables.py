@@ -99,8 +99,13 @@ def mixture_tables(rows_a: np.ndarray, rows_b: np.ndarray, weight: np.ndarray) -
     itself, so the decoder can use its prebuilt model. Exact: sums are at most 64 x 65792."""
     tables = all_tables()
     w = weight.astype(np.float32)[:, None]
-    mixed = tables[rows_a] * w + tables[rows_b] * (fam.WEIGHT_ONE - w)
-    pure_a, pure_b = weight == fam.WEIGHT_ONE, weight == 0
-    mixed[pure_a] = tables[rows_a[pure_a]]
-    mixed[pure_b] = tables[rows_b[pure_b]]
+    mixed = np.take(tables, rows_a, axis=0)
+    mixed *= w
+    other = np.take(tables, rows_b, axis=0)
+    other *= fam.WEIGHT_ONE - w
+    mixed += other
+    if (weight % fam.WEIGHT_ONE == 0).any():  # rare: keep the decoder's code path lean
+        pure_a, pure_b = weight == fam.WEIGHT_ONE, weight == 0
+        mixed[pure_a] = tables[rows_a[pure_a]]
+        mixed[pure_b] = tables[rows_b[pure_b]]
     return mixed
