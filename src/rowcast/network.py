@@ -209,11 +209,15 @@ def log2_likelihood(params: dict, x: torch.Tensor) -> torch.Tensor:
     mixture of two), with the coder's +1 count per value mirrored so that training sees what
     the coder pays."""
     total = 2.0**fam.CDF_BITS
-    log_p = _bin_log_probability(params["mu4"], params["ls8"], x)
-    floored = torch.logaddexp(log_p + math.log(total), torch.zeros_like(log_p))
+
+    def log_count(mu4: torch.Tensor, ls8: torch.Tensor) -> torch.Tensor:
+        """ln of the coder's count: 2**16 x the bin's probability, plus one."""
+        log_p = _bin_log_probability(mu4, ls8, x)
+        return torch.logaddexp(log_p + math.log(total), torch.zeros_like(log_p))
+
+    floored = log_count(params["mu4"], params["ls8"])
     if "w" in params:
-        log_pb = _bin_log_probability(params["mu4b"], params["ls8b"], x)
-        floored_b = torch.logaddexp(log_pb + math.log(total), torch.zeros_like(log_pb))
+        floored_b = log_count(params["mu4b"], params["ls8b"])
         w = params["w"] / fam.WEIGHT_ONE
         return torch.log2(w * floored.exp() + (1.0 - w) * floored_b.exp()) - math.log2(
             total + 256.0)
