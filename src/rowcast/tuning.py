@@ -22,7 +22,6 @@ OFFSETS = np.arange(-8, 8)  # each offset is one signed 4-bit nibble
 SCALE_BYTES = fam.CHANNELS * (len(BANDS) + 1) // 2  # 3 channels x 8 bands x 4 bits
 COUPLING_OFFSETS = np.arange(-32, 33, 4)  # tried for each coupling, in its 64ths
 HEADER_BYTES = SCALE_BYTES + 4  # then G<-R, B<-R, B<-G as signed bytes, and a zero byte
-LEVEL_COUNT = fam.LS_HI - fam.LS_LO + 1
 
 
 def band_of(levels: np.ndarray) -> np.ndarray:
@@ -31,7 +30,7 @@ def band_of(levels: np.ndarray) -> np.ndarray:
 
 
 def offset_map(offsets: np.ndarray) -> np.ndarray:
-    """(..., 3, LEVEL_COUNT): the offset for every level of every channel, from offsets
+    """(..., 3, levels): the offset for every level of every channel, from offsets
     (..., 3, 8). A subpixel whose (first component's) level is l gets every level of its
     components moved by the offset of l, then clamped to the family's range."""
     return offsets[..., band_of(np.arange(fam.LS_LO, fam.LS_HI + 1))]
