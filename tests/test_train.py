@@ -76,8 +76,9 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
 
 @pytest.mark.parametrize("quant", [False, True])
 def test_growing_the_head_keeps_what_the_network_computes(quant):
-    """A wider head, a longer left window and the activity input added to a trained network
-    change none of its outputs, float or quantised, so a run can continue from it."""
+    """A wider head, a longer left window, the activity input and a deeper row stack added
+    to a trained network change none of its outputs, float or quantised, so a run can
+    continue from it."""
     torch.manual_seed(2)
     net = Predictor(width=8, hidden=8, depth=2)
     x = torch.randint(0, 256, (2, 3, 12, 12)).float()
@@ -85,7 +86,9 @@ def test_growing_the_head_keeps_what_the_network_computes(quant):
     net.quant = quant
     with torch.no_grad():
         net.out.bias.normal_()  # outputs that depend on everything
-    big = grow(net, hidden=16, left=5, activity=True)
-    assert (big.hidden, big.left, big.activity) == (16, 5, True)
+    big = grow(net, hidden=16, left=5, activity=True, depth=4)
+    assert (big.hidden, big.left, big.activity, big.depth) == (16, 5, True, 4)
     with torch.no_grad():
         assert torch.equal(net(x), big(x))
+    with pytest.raises(SystemExit, match="shallower"):
+        grow(big, hidden=16, left=5, activity=True, depth=3)

@@ -63,6 +63,7 @@ def command(cfg: Config) -> str:
     extra = f" --resume {cfg.resume} --lr {cfg.lr:g}" if cfg.resume else ""
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     extra += f" --components {cfg.components}" * (cfg.components > 1)
+    extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
@@ -212,21 +213,30 @@ def calibrate(model: Predictor, x: torch.Tensor) -> None:
 
 @torch.no_grad()
 def grow(model: Predictor, hidden: int, left: int, activity: bool,
-         components: int = 1) -> Predictor:
-    """A copy of `model` with a wider head, a longer left window, the activity input or a
-    second component, so that training can continue from a finished run. It computes the
-    same function, float or quantised (the old units' weights on new inputs start at zero),
-    except that a new second component starts as a copy of the first at e times its scale
-    with 5% of the weight: a heavier tail, which already helps."""
-    if (hidden, left, activity, components) == (model.hidden, model.left, model.activity,
-                                                model.components):
+         components: int = 1, depth: int | None = None) -> Predictor:
+    """A copy of `model` with a wider head, a longer left window, the activity input, a
+    second component or a deeper row stack, so that training can continue from a finished
+    run. It computes the same function, float or quantised (the old units' weights on new
+    inputs start at zero; a new row layer starts as the identity, with the step of the
+    layer before it), except that a new second component starts as a copy of the first at
+    e times its scale with 3/64 of the weight: a heavier tail, which already helps."""
+    depth = model.depth if depth is None else depth
+    if (hidden, left, activity, components, depth) == (
+            model.hidden, model.left, model.activity, model.components, model.depth):
         return model
     if model.activity and model.left != left:
         raise SystemExit("cannot lengthen the left window of a model with the activity input")
-    big = Predictor(model.width, hidden, model.depth, left, activity, components)
+    if depth < model.depth:
+        raise SystemExit("cannot make the row stack shallower")
+    big = Predictor(model.width, hidden, depth, left, activity, components)
     big.quant = model.quant
-    for old, new in zip(model.rows, big.rows, strict=True):
+    for old, new in zip(model.rows, big.rows[: model.depth], strict=True):
         new.load_state_dict(old.state_dict())
+    for new in big.rows[model.depth :]:  # out = in: the current row's middle tap, weight 1
+        new.weight.zero_()
+        new.bias.zero_()
+        new.weight[:, :, new.kh - 1, new.kw // 2] = torch.eye(model.width)
+        new.log_step.copy_(model.rows[-1].log_step)
     for old, new in ((model.head1, big.head1), (model.head2, big.head2), (model.out, big.out)):
         cout, cin = old.weight.shape[:2]
         new.weight[:cout, :cin] = old.weight
@@ -286,7 +296,8 @@ def train(cfg: Config, log=print) -> Predictor:
     if cfg.resume:
         model, meta = load_checkpoint(Path(cfg.resume))
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
-                     cfg.activity or model.activity, max(cfg.components, model.components))
+                     cfg.activity or model.activity, max(cfg.components, model.components),
+                     max(cfg.depth, model.depth))
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity, components=model.components)
         history = meta["state"]["history"]
@@ -349,15 +360,16 @@ def main(
     left: int = 3,
     activity: bool = False,
     components: int = 1,
+    depth: int = 4,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
-    [--hidden N --left N --activity --components 2]; resuming with a larger head grows it
-    (see `grow`)."""
+    [--hidden N --left N --activity --components 2 --depth N]; resuming with a larger head
+    or a deeper row stack grows it (see `grow`)."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
                  resume=resume, threads=threads, hidden=hidden, left=left, activity=activity,
-                 components=components),
+                 components=components, depth=depth),
           log=lambda s: print(s, flush=True))
 
 
