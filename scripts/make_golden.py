@@ -3,6 +3,7 @@
     python scripts/make_golden.py first   # tiny model, images, golden.rowcast (0.1, untuned)
     python scripts/make_golden.py tuned   # tuned/sky.png, golden-tuned.rowcast (0.2, tuning)
     python scripts/make_golden.py mixture # tiny-mixture model, golden-mixture.rowcast (0.2)
+    python scripts/make_golden.py packed  # golden-packed.rowcast (0.3, format version 3)
 
 Each part ran once; the files are committed, and tests check that today's code still
 decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
@@ -41,7 +42,7 @@ def first() -> None:
     leaf = np.asarray(Image.open(ROOT / "sample_images/frost-sensor/leaf_0600.png"))
     Image.fromarray(leaf[10:17, 5:14]).save(GOLDEN / "images/leaf.png")
     report(rowcast.compress([GOLDEN / "images"], GOLDEN / "golden.rowcast",
-                            model=GOLDEN / "tiny.safetensors", force=True, tune=False))
+                            model=GOLDEN / "tiny.safetensors", force=True, version=1))
 
 
 def tuned() -> None:
@@ -49,7 +50,7 @@ def tuned() -> None:
     sky = np.asarray(Image.open(ROOT / "sample_images/weather-ridge/sky_1300.png"))
     Image.fromarray(sky[:40, :48]).save(GOLDEN / "tuned/sky.png")
     report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-tuned.rowcast",
-                            model=GOLDEN / "tiny.safetensors"))
+                            model=GOLDEN / "tiny.safetensors", version=2))
 
 
 def mixture() -> None:
@@ -65,7 +66,12 @@ def mixture() -> None:
     card, tensors = export(net, "golden-tiny-mixture")
     save_model(GOLDEN / "tiny-mixture.safetensors", card, tensors)
     report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-mixture.rowcast",
-                            model=GOLDEN / "tiny-mixture.safetensors"))
+                            model=GOLDEN / "tiny-mixture.safetensors", version=2))
+
+
+def packed() -> None:
+    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
+                            GOLDEN / "golden-packed.rowcast", model=GOLDEN / "tiny.safetensors"))
 
 
 def report(summary) -> None:
@@ -74,4 +80,4 @@ def report(summary) -> None:
 
 
 if __name__ == "__main__":
-    {"first": first, "tuned": tuned, "mixture": mixture}[sys.argv[1]]()
+    {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed}[sys.argv[1]]()

@@ -1,4 +1,4 @@
-"""Specification tests for archive format v1 (docs/FORMAT.md)."""
+"""Specification tests for the archive format, versions 1 to 3 (docs/FORMAT.md)."""
 
 from __future__ import annotations
 
@@ -49,10 +49,10 @@ SAMPLE = [
 ]
 
 
-def write_sample(tmp_path: Path, entries: list[Entry] = SAMPLE) -> Path:
+def write_sample(tmp_path: Path, entries: list[Entry] = SAMPLE, version: int = 3) -> Path:
     """Write `entries` to a fresh archive in tmp_path and return its path."""
     dest = tmp_path / "sample.rca"
-    write_archive(dest, MODEL, entries)
+    write_archive(dest, MODEL, entries, version=version)
     return dest
 
 
@@ -83,10 +83,33 @@ def first_record_fields_at(data: bytes) -> int:
     return 4 + 2 + path_length
 
 
-def single_entry_archive(tmp_path: Path) -> tuple[Path, bytes]:
-    """Write an archive holding one stored entry; return its path and bytes."""
-    dest = write_sample(tmp_path, [stored("aa/x.png", "L", 2, 2, 1)])
+def single_entry_archive(tmp_path: Path, version: int = 2) -> tuple[Path, bytes]:
+    """Write an archive holding one stored entry (by default with version 2's fixed-width
+    index, whose fields the crafting tests overwrite in place); return its path and bytes."""
+    dest = write_sample(tmp_path, [stored("aa/x.png", "L", 2, 2, 1)], version)
     return dest, dest.read_bytes()
+
+
+def number(value: int) -> bytes:
+    """FORMAT.md's variable-length number: 7 bits a byte, low first, high bit = more."""
+    out = b""
+    while value > 0x7F:
+        out += bytes([value & 0x7F | 0x80])
+        value >>= 7
+    return out + bytes([value])
+
+
+def packed_record(path: bytes, mode: int, method: int, width: int, height: int,
+                  checksum: bytes, length: int) -> bytes:
+    """One version-3 index record, packed as FORMAT.md says."""
+    return (number(len(path)) + path + bytes([mode, method]) + number(width) + number(height)
+            + checksum + number(length))
+
+
+def packed_index(records: bytes, count: int = 1, length: int | None = None) -> bytes:
+    """A version-3 index: count, the records' length, the records deflated."""
+    length = len(records) if length is None else length
+    return struct.pack("<II", count, length) + zlib.compress(records)
 
 
 def test_modes_and_methods_have_the_agreed_codes() -> None:
@@ -332,7 +355,7 @@ def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -
         write_archive(tmp_path / "no.rca", MODEL, [tuned], version=1)
     assert not (tmp_path / "no.rca").exists()
     new = tmp_path / "new.rca"
-    write_archive(new, MODEL, [tuned])
+    write_archive(new, MODEL, [tuned], version=2)
     assert struct.unpack("<H", new.read_bytes()[8:10]) == (2,)
     assert read_index(new)[1][0].method == "tuned"
     data = bytearray(new.read_bytes())
@@ -451,3 +474,72 @@ def test_every_single_byte_flip_is_caught_or_harmless(tmp_path: Path) -> None:
                 outcomes["read"] += 1
     assert outcomes["refused"] > 0
     assert outcomes["read"] > 0  # payload bytes carry no CRC here; the pixel checksum guards them
+
+
+def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) -> None:
+    """Writers write version 3 unless told otherwise: the same entries, offsets and payloads
+    as version 2, with an index of variable-length numbers, no offsets, deflated by zlib
+    (the index bytes are checked against an independent packing of FORMAT.md's layout)."""
+    entries = SAMPLE + [stored(f"orchard/cam{i:02d}/2026-11-30T06-00.png", "L", 2, 2, i)
+                        for i in range(12)]
+    (tmp_path / "v2").mkdir()
+    (tmp_path / "v3").mkdir()
+    old = write_sample(tmp_path / "v2", entries, version=2)
+    new = tmp_path / "v3" / "sample.rca"
+    write_archive(new, MODEL, entries)
+    assert struct.unpack("<H", new.read_bytes()[8:10]) == (3,)
+    assert read_index(new) == read_index(old)
+    for entry in read_index(new)[1]:
+        assert read_payload(new, entry) == read_payload(old, entry)
+    data = new.read_bytes()
+    offset, length = locate_index(data)
+    assert offset == locate_index(old.read_bytes())[0]  # payloads in the same places
+    records = b"".join(packed_record(normalise_path(e.path).encode(), MODES[e.mode],
+                                     METHODS[e.method], e.width, e.height, e.checksum,
+                                     len(e.payload)) for e in entries)
+    index = data[offset : offset + length]
+    assert index[:8] == struct.pack("<II", len(entries), len(records))
+    assert zlib.decompress(index[8:]) == records
+    assert length < 0.6 * locate_index(old.read_bytes())[1]
+
+
+@pytest.mark.parametrize(
+    ("records", "count", "length", "reason"),
+    [
+        (packed_record(b"../x.png", 1, 0, 2, 2, bytes(32), 4), 1, None, "'..' component"),
+        (packed_record(b"a//x.png", 1, 0, 2, 2, bytes(32), 4), 1, None, "canonical form"),
+        (packed_record(b"aa/x.png", 9, 0, 2, 2, bytes(32), 4), 1, None, "mode code 9"),
+        (packed_record(b"aa/x.png", 2, 1, 2, 2, bytes(32), 2**40), 1, None,
+         "past the payload area"),
+        (packed_record(b"aa/x.png", 1, 0, 0, 2, bytes(32), 0), 1, None, "width 0"),
+        (b"\x88\x00aa/x.png" + bytes(37), 1, None, "malformed number"),
+        (b"\x08aa/x.png\x01\x00" + b"\xff" * 11 + bytes(32), 1, None, "malformed number"),
+        (packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4) + b"\0", 1, None,
+         "trailing bytes in index"),
+        (packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4), 2, None, "cannot fit"),
+        (packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4), 1, 60, "stated length"),
+        (packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4), 1, 2**31, "cannot come from"),
+        (packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4), 2**32 - 1, 2**32 - 1,
+         "entry count 4294967295 cannot fit"),
+    ],
+)
+def test_crafted_packed_indexes_are_refused(tmp_path: Path, records: bytes, count: int,
+                                            length: int | None, reason: str) -> None:
+    """A well-sealed version-3 index whose records break a reading rule is refused, and
+    lengths that do not add up are refused before anything large is inflated."""
+    dest, data = single_entry_archive(tmp_path, version=3)
+    dest.write_bytes(reseal(data, packed_index(records, count, length)))
+    with pytest.raises(ArchiveError, match=reason):
+        read_index(dest)
+
+
+def test_a_packed_index_that_does_not_inflate_is_refused(tmp_path: Path) -> None:
+    """Bytes that are not a zlib stream, or a stream cut short, are refused by name."""
+    dest, data = single_entry_archive(tmp_path, version=3)
+    good = packed_index(packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4))
+    for index, reason in [(good[:8] + b"not zlib at all", "does not inflate"),
+                          (good[:-3], "does not inflate to its stated length"),
+                          (good + b"\0", "does not inflate to its stated length")]:
+        dest.write_bytes(reseal(data, index))
+        with pytest.raises(ArchiveError, match=reason):
+            read_index(dest)

@@ -28,21 +28,22 @@ def test_golden_archive_still_decodes_to_the_committed_images():
 
 
 def test_golden_images_still_encode_to_the_committed_bytes(tmp_path):
-    """Re-encoding without tuning (the 0.1 method) gives the archive byte for byte."""
+    """Re-encoding as rowcast 0.1 did (format version 1, no tuning) gives the archive byte
+    for byte."""
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / "images"], out, model=TINY, tune=False)
+    rowcast.compress([GOLDEN / "images"], out, model=TINY, version=1)
     assert out.read_bytes() == (GOLDEN / "golden.rowcast").read_bytes()
 
 
 def test_tuned_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
     """The 0.2 method: scale-tuned entries decode to the committed image and re-encode
-    byte for byte."""
+    byte for byte in format version 2."""
     ((entry, planes),) = rowcast.decode_entries(GOLDEN / "golden-tuned.rowcast", model=TINY)
     assert entry.method == "tuned"
     expected = np.asarray(Image.open(GOLDEN / "tuned" / entry.path)).transpose(2, 0, 1)
     assert np.array_equal(planes, expected)
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / "tuned"], out, model=TINY)
+    rowcast.compress([GOLDEN / "tuned"], out, model=TINY, version=2)
     assert out.read_bytes() == (GOLDEN / "golden-tuned.rowcast").read_bytes()
 
 
@@ -57,5 +58,21 @@ def test_two_component_golden_archive_decodes_and_re_encodes_to_the_same_bytes(t
     ((entry, planes),) = rowcast.decode_entries(GOLDEN / "golden-mixture.rowcast", model=model)
     assert np.array_equal(planes, sky)
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / "tuned"], out, model=model)
+    rowcast.compress([GOLDEN / "tuned"], out, model=model, version=2)
     assert out.read_bytes() == (GOLDEN / "golden-mixture.rowcast").read_bytes()
+
+
+def test_packed_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
+    """Format version 3 (packed index): both golden image sets in one archive, decoded and
+    re-encoded byte for byte by the default writer."""
+    decoded = dict(rowcast.decode_entries(GOLDEN / "golden-packed.rowcast", model=TINY))
+    assert sorted(e.path for e in decoded) == ["leaf.png", "orchard.png", "sky.png"]
+    assert sorted(e.method for e in decoded) == ["model", "model", "tuned"]
+    for entry, planes in decoded.items():
+        folder = "tuned" if entry.path == "sky.png" else "images"
+        original = np.asarray(Image.open(GOLDEN / folder / entry.path))
+        expected = original[None] if original.ndim == 2 else original.transpose(2, 0, 1)
+        assert np.array_equal(planes, expected)
+    out = tmp_path / "again.rowcast"
+    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"], out, model=TINY)
+    assert out.read_bytes() == (GOLDEN / "golden-packed.rowcast").read_bytes()

@@ -108,17 +108,23 @@ def output_name(path: str) -> str:
 
 
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
-             force: bool = False, progress: Progress = None, tune: bool = True) -> Summary:
+             force: bool = False, progress: Progress = None, tune: bool = True,
+             version: int = archive.VERSION) -> Summary:
     """Compress image files and directories into one archive at `dest` (atomic).
 
-    With `tune` (the default) each image may carry its own scale tuning (`tuning`, format
-    version 2); without it, the archive is format version 1, as rowcast 0.1 wrote it.
+    With `tune` (the default) each image may carry its own scale tuning (`tuning`).
+    `version` is the format version to write: the newest unless readers of an older rowcast
+    need 2 (rowcast 0.2) or 1 (rowcast 0.1; it has no tuning, so none is done).
 
     Every input is checked from its header first; then images are read and coded in
     groups of up to 32 (or 4 megapixels), same-sized ones together, and written in input
     order, so memory stays bounded however many there are.
     """
     dest = Path(dest)
+    if version not in archive.VERSION_METHODS:
+        known = ", ".join(map(str, archive.VERSION_METHODS))
+        raise UsageError(f"{dest}: cannot write format version {version} (only {known})")
+    tune = tune and "tuned" in archive.VERSION_METHODS[version]
     if dest.is_dir():
         raise UsageError(f"{dest}: is a directory")
     if dest.exists() and not force:
@@ -172,7 +178,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
 
     try:
         size = archive.write_archive(dest, identity(net), entries(), force=force,
-                                     version=archive.VERSION if tune else 1)
+                                     version=version)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
     return Summary(dest, identity(net), rows, size)

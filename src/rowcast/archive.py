@@ -1,7 +1,9 @@
-"""Archive format v1: many compressed images in one file, each readable on its own.
+"""The archive: many compressed images in one file, each readable on its own.
 
 Layout (docs/FORMAT.md): a header naming the model, the payloads back to back, an index
-protected by CRC32, and a fixed-size trailer that locates the index.
+protected by CRC32, and a fixed-size trailer that locates the index. Versions 1 and 2 hold
+fixed-width index records; version 3 packs them (variable-length numbers, offsets implied
+by the order, the whole deflated), which matters for small images with long paths.
 """
 
 from __future__ import annotations
@@ -18,7 +20,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 MAGIC = b"ROWCAST\xe5"
-VERSION = 2  # what writers write unless told otherwise
+VERSION = 3  # what writers write unless told otherwise
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
@@ -27,9 +29,10 @@ METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2}
 _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
 _METHOD_NAMES: dict[int, str] = {code: name for name, code in METHODS.items()}
-# Version 2 added method 2; otherwise the versions are read and written alike.
+# Version 2 added method 2; version 3 packed the index.
 VERSION_METHODS: dict[int, frozenset[str]] = {1: frozenset({"stored", "model"}),
-                                              2: frozenset(METHODS)}
+                                              2: frozenset(METHODS), 3: frozenset(METHODS)}
+PACKED_FROM = 3  # the first version with a packed index
 
 _PREFIX = struct.Struct("<8sH")  # magic, version
 _HEADER = struct.Struct("<8sHH32sB")  # magic, version, flags, model SHA-256, model name length
@@ -38,6 +41,8 @@ _TRAILER = struct.Struct("<QQI4s")  # index offset, index length, index CRC32, e
 _COUNT = struct.Struct("<I")
 _PATH_LEN = struct.Struct("<H")
 _ENTRY = struct.Struct("<BBII32sQQ")  # mode, method, width, height, checksum, offset, length
+_PACKED = struct.Struct("<II")  # packed index: entry count, length of the inflated records
+_CODES = struct.Struct("<BB")  # mode, method
 
 _MIN_HEADER = _HEADER.size + _CRC.size
 _MIN_RECORD = _PATH_LEN.size + 1 + _ENTRY.size  # a record's path has at least one byte
@@ -45,6 +50,10 @@ _MAX_NAME_BYTES = 255
 _MAX_PATH_BYTES = 2**16 - 1
 _MAX_DIMENSION = 2**32 - 1
 _DIGEST_BYTES = 32
+# a packed record: path length, a path byte, mode, method, width, height, checksum, length
+_MIN_PACKED_RECORD = 1 + 1 + _CODES.size + 1 + 1 + _DIGEST_BYTES + 1
+_MAX_INFLATION = 1032  # deflate never expands more than this: a bound on honest lengths
+_MAX_NUMBER_BYTES = 10  # a variable-length number below 2**64
 _WORD_BYTES = 4
 _TUNING_BYTES = 16  # rowcast.tuning.HEADER_BYTES: the layout is fixed here too
 _ASCII_LETTERS = frozenset(string.ascii_letters)
@@ -190,9 +199,24 @@ def _encode_header(model: ModelIdentity, version: int) -> bytes:
     return head + _CRC.pack(zlib.crc32(head))
 
 
-def _encode_record(entry: Entry, path: str, offset: int) -> bytes:
-    """Pack one index record for an already validated entry whose payload starts at offset."""
+def _number(value: int) -> bytes:
+    """A variable-length unsigned number: 7 bits a byte, low first, high bit = more follow."""
+    out = bytearray()
+    while True:
+        low, value = value & 0x7F, value >> 7
+        out.append(low | (0x80 if value else 0))
+        if not value:
+            return bytes(out)
+
+
+def _encode_record(entry: Entry, path: str, offset: int, version: int) -> bytes:
+    """One index record for an already validated entry whose payload starts at offset."""
     raw_path = path.encode("utf-8")
+    if version >= PACKED_FROM:
+        return (_number(len(raw_path)) + raw_path
+                + _CODES.pack(MODES[entry.mode], METHODS[entry.method])
+                + _number(entry.width) + _number(entry.height) + entry.checksum
+                + _number(len(entry.payload)))
     fields = _ENTRY.pack(
         MODES[entry.mode],
         METHODS[entry.method],
@@ -222,10 +246,14 @@ def _write_body(out: BinaryIO, header: bytes, entries: Iterable[Entry], dest: Pa
         except _InvalidError as problem:
             raise ArchiveError(f"{dest}: entry {entry.path!r}: {problem}") from None
         seen.add(path)
-        records.append(_encode_record(entry, path, offset))
+        records.append(_encode_record(entry, path, offset, version))
         out.write(entry.payload)
         offset += len(entry.payload)
-    index = _COUNT.pack(len(records)) + b"".join(records)
+    if version >= PACKED_FROM:
+        packed = b"".join(records)
+        index = _PACKED.pack(len(records), len(packed)) + zlib.compress(packed, 9)
+    else:
+        index = _COUNT.pack(len(records)) + b"".join(records)
     out.write(index)
     out.write(_TRAILER.pack(offset, len(index), zlib.crc32(index), END_MARK))
     return out.tell()
@@ -294,6 +322,18 @@ class _Cursor:
     def unpack(self, layout: struct.Struct) -> tuple[Any, ...]:
         """Decode the next fixed-size group of fields."""
         return layout.unpack(self.take(layout.size))
+
+    def number(self) -> int:
+        """The next variable-length number (`_number`), refusing padded or overlong ones."""
+        value = 0
+        for i in range(_MAX_NUMBER_BYTES):
+            (byte,) = self.take(1)
+            value |= (byte & 0x7F) << (7 * i)
+            if not byte & 0x80:
+                if byte == 0 and i:
+                    raise _InvalidError("malformed number in index")
+                return value
+        raise _InvalidError("malformed number in index")
 
     def at_end(self) -> bool:
         """Whether every byte has been consumed."""
@@ -387,27 +427,65 @@ def _check_record(path: str, fields: tuple[Any, ...], start: int, limit: int) ->
     return IndexEntry(path, mode, width, height, method, checksum, offset, length)
 
 
-def _parse_record(cursor: _Cursor, start: int, limit: int) -> IndexEntry:
-    """Decode and validate the next index record."""
-    path = _decode_utf8(cursor.take(cursor.unpack(_PATH_LEN)[0]), "entry path")
-    fields = cursor.unpack(_ENTRY)
+def _parse_record(cursor: _Cursor, start: int, limit: int, packed: bool) -> IndexEntry:
+    """Decode and validate the next index record (packed: version 3's form, whose offset
+    is where the previous payload ended)."""
+    if not packed:
+        path = _decode_utf8(cursor.take(cursor.unpack(_PATH_LEN)[0]), "entry path")
+        fields = cursor.unpack(_ENTRY)
+    else:
+        path_length = cursor.number()
+        if path_length > _MAX_PATH_BYTES:
+            raise _InvalidError(f"path length {path_length} over {_MAX_PATH_BYTES}")
+        path = _decode_utf8(cursor.take(path_length), "entry path")
+        codes = cursor.unpack(_CODES)
+        width, height = cursor.number(), cursor.number()
+        fields = (*codes, width, height, cursor.take(_DIGEST_BYTES), start, cursor.number())
     try:
         return _check_record(path, fields, start, limit)
     except _InvalidError as problem:
         raise _InvalidError(f"entry {path!r}: {problem}") from None
 
 
-def _parse_index(index: bytes, header_end: int, index_offset: int) -> list[IndexEntry]:
+def _inflate(index: bytes) -> tuple[int, bytes]:
+    """(entry count, records) of a packed index, refusing any length that does not add up
+    before inflating more than an honest writer's records."""
+    if len(index) < _PACKED.size:
+        raise _InvalidError("truncated index")
+    count, length = _PACKED.unpack_from(index)
+    deflated = index[_PACKED.size :]
+    if count > length // _MIN_PACKED_RECORD:
+        raise _InvalidError(f"entry count {count} cannot fit in {length} bytes of records")
+    if length > _MAX_INFLATION * len(deflated):
+        raise _InvalidError(f"{length} bytes of records cannot come from a "
+                            f"{len(deflated)}-byte packed index")
+    inflater = zlib.decompressobj()
+    try:
+        records = inflater.decompress(deflated, length)
+    except zlib.error:
+        raise _InvalidError("packed index does not inflate") from None
+    if len(records) != length or not inflater.eof or inflater.unused_data:
+        raise _InvalidError("packed index does not inflate to its stated length")
+    return count, records
+
+
+def _parse_index(index: bytes, header_end: int, index_offset: int,
+                 version: int) -> list[IndexEntry]:
     """Decode the whole index; payloads must tile [header_end, index_offset) in order."""
-    cursor = _Cursor(index)
-    (count,) = cursor.unpack(_COUNT)
-    if count > (len(index) - _COUNT.size) // _MIN_RECORD:
-        raise _InvalidError(f"entry count {count} cannot fit in a {len(index)}-byte index")
+    packed = version >= PACKED_FROM
+    if packed:
+        count, records = _inflate(index)
+        cursor = _Cursor(records)
+    else:
+        cursor = _Cursor(index)
+        (count,) = cursor.unpack(_COUNT)
+        if count > (len(index) - _COUNT.size) // _MIN_RECORD:
+            raise _InvalidError(f"entry count {count} cannot fit in a {len(index)}-byte index")
     entries: list[IndexEntry] = []
     seen: set[str] = set()
     position = header_end
     for _ in range(count):
-        entry = _parse_record(cursor, position, index_offset)
+        entry = _parse_record(cursor, position, index_offset, packed)
         if entry.path in seen:
             raise _InvalidError(f"duplicate path {entry.path!r}")
         seen.add(entry.path)
@@ -431,7 +509,7 @@ def read_index(src: Path) -> tuple[ModelIdentity, list[IndexEntry]]:
             index = _read_at(f, index_offset, index_length)
             if zlib.crc32(index) != crc:
                 raise _InvalidError("index CRC mismatch")
-            entries = _parse_index(index, header_end, index_offset)
+            entries = _parse_index(index, header_end, index_offset, version)
             for e in entries:
                 if e.method not in VERSION_METHODS[version]:
                     raise _InvalidError(f"method {e.method!r} is not defined in format "
