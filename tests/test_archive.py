@@ -539,7 +539,9 @@ def test_a_packed_index_that_does_not_inflate_is_refused(tmp_path: Path) -> None
     good = packed_index(packed_record(b"aa/x.png", 1, 0, 2, 2, bytes(32), 4))
     for index, reason in [(good[:8] + b"not zlib at all", "does not inflate"),
                           (good[:-3], "does not inflate to its stated length"),
-                          (good + b"\0", "does not inflate to its stated length")]:
+                          (good + b"\0", "does not inflate to its stated length"),
+                          (packed_index(bytes(10**6), count=0, length=0),
+                           "does not inflate to its stated length")]:
         dest.write_bytes(reseal(data, index))
         with pytest.raises(ArchiveError, match=reason):
             read_index(dest)

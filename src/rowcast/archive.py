@@ -460,8 +460,8 @@ def _inflate(index: bytes) -> tuple[int, bytes]:
         raise _InvalidError(f"{length} bytes of records cannot come from a "
                             f"{len(deflated)}-byte packed index")
     inflater = zlib.decompressobj()
-    try:
-        records = inflater.decompress(deflated, length)
+    try:  # at most one byte past the stated length (a limit of 0 would mean none)
+        records = inflater.decompress(deflated, length + 1)
     except zlib.error:
         raise _InvalidError("packed index does not inflate") from None
     if len(records) != length or not inflater.eof or inflater.unused_data:
