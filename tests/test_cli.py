@@ -799,3 +799,20 @@ def test_api_round_trip_and_verify(made: Made, tmp_path: Path) -> None:
     assert {e.path for e in entries} == set(SOURCES)
     assert {p.relative_to(tmp_path / "out").as_posix() for p in written} == set(SOURCES.values())
     assert (check.ok, check.checked, check.problems) == (True, 5, [])
+
+
+def test_api_compress_writes_an_older_format_version_for_older_readers(
+    made: Made, tmp_path: Path
+) -> None:
+    """version=2 keeps tuning, version=1 codes without it (rowcast 0.1 had no `tuned`);
+    the same pixels come back from each, and versions no reader knows are usage errors."""
+    for version in (3, 2, 1):
+        dest = tmp_path / f"v{version}.rca"
+        rowcast.compress([made.photos], dest, model=TINY, version=version)
+        assert dest.read_bytes()[8:10] == bytes([version, 0])
+        methods = {e.method for e in rowcast.read_index(dest)[1]}
+        assert ("tuned" in methods) == (version > 1)
+        assert rowcast.verify(dest, against=made.photos, model=TINY).ok
+    with pytest.raises(rowcast.UsageError, match="cannot write format version 4"):
+        rowcast.compress([made.photos], tmp_path / "v4.rca", model=TINY, version=4)
+    assert not (tmp_path / "v4.rca").exists()
