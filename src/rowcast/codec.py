@@ -23,7 +23,8 @@ from rowcast.tables import TABLE_TOTAL, all_tables, mixture_tables, table_rows
 from rowcast.workers import run_split, shares
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
-PASS_PIXELS = 1 << 15  # pixels per parallel pass: bounds the memory of activations
+PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (encoding
+# 64-px thumbnails 2 a pass is 22-25% faster than 8 a pass, measured) and memory bounded
 
 
 @dataclass(frozen=True)
