@@ -49,7 +49,7 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
         Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
     Image.fromarray(smooth_image(9, 256)).save(data / "held.png")  # one 64-px tile at 1/4
     cfg = Config(data=str(data), out=str(tmp_path / "run"), minutes=0.1, batch=4, width=8,
-                 hidden=8, depth=2, qat_at=0.3, validation=("held.png",))
+                 hidden=80, depth=2, qat_at=0.3, validation=("held.png",))
     train(cfg)
     net, meta = load_checkpoint(tmp_path / "run")
     assert net.quant and meta["state"]["summary"]["steps"] > 0
@@ -60,6 +60,7 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     _, more = load_checkpoint(tmp_path / "more")
     assert more["state"]["summary"]["steps"] > first
     assert len(more["state"]["commands"]) == 2 and "--resume" in more["state"]["commands"][1]
+    assert "--hidden 80" in more["state"]["commands"][1]  # the size it continued, not 64
 
     summary = export_checkpoint(tmp_path / "more", tmp_path / "mine.safetensors", "mine")
     for key in ("val_float_bpsp", "val_quant_bpsp", "val_integer_bpsp"):

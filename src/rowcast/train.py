@@ -292,7 +292,7 @@ def train(cfg: Config, log=print) -> Predictor:
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
     model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components)
-    history, commands, step, before = [], [command(cfg)], 0, 0.0
+    history, commands, step, before = [], [], 0, 0.0
     if cfg.resume:
         model, meta = load_checkpoint(Path(cfg.resume))
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
@@ -301,9 +301,10 @@ def train(cfg: Config, log=print) -> Predictor:
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity, components=model.components)
         history = meta["state"]["history"]
-        commands = meta["state"].get("commands", [command(saved_config(meta))]) + commands
+        commands = meta["state"].get("commands", [command(saved_config(meta))])
         step, before = history[-1]["steps"], history[-1]["minutes"]
         log(f"resuming {cfg.resume} after {step} steps, {before:.1f} min")
+    commands.append(command(cfg))  # after a resume: the sizes of the model it continues
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
     out = Path(cfg.out)
     budget = cfg.minutes * 60.0
