@@ -89,14 +89,17 @@ def choose(cost, levels: np.ndarray) -> tuple[np.ndarray, float]:
 def choose_couplings(cost) -> tuple[np.ndarray, float]:
     """(coupling offsets (3,), bits saved by them): each offset in turn, G<-R, B<-R, B<-G
     and B<-R again, set to the candidate of COUPLING_OFFSETS that minimises cost(k, offsets),
-    the bits of the plane that coupling k moves (G for k = 0, else B)."""
+    the bits of the plane that coupling k moves (G for k = 0, else B). G's bits depend on
+    coupling 0 alone, so the best trial of each plane's last pass is its final cost."""
     offsets = np.zeros(3, np.int64)
     before = [cost(0, offsets), cost(1, offsets)]
+    after = list(before)
     candidates = COUPLING_OFFSETS[np.argsort(np.abs(COUPLING_OFFSETS), kind="stable")]
     for k in (0, 1, 2, 1):
         trials = []
         for d in candidates:  # zero first: ties keep the smaller move
             offsets[k] = d
             trials.append(cost(k, offsets))
-        offsets[k] = candidates[int(np.argmin(trials))]
-    return offsets, before[0] + before[1] - cost(0, offsets) - cost(1, offsets)
+        best = int(np.argmin(trials))
+        offsets[k], after[min(k, 1)] = candidates[best], trials[best]
+    return offsets, before[0] + before[1] - after[0] - after[1]
