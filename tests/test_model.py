@@ -60,6 +60,24 @@ def test_changing_one_weight_changes_the_identity_or_breaks_the_stored_bound():
         model_from_bytes(to_bytes(model.card, {**tensors, "layer0.weight": w}), "tampered")
 
 
+def test_a_multiplier_that_would_make_requantisation_inexact_is_refused():
+    """Requantisation multiplies accumulators by their layer's multipliers in float64; a file
+    whose bound x multiplier reaches 2**52 would round there (IEEE 754 doubles carry 53
+    significant bits), so it is refused."""
+    model = load_model(TINY)
+    tensors = load(TINY.read_bytes())
+    bias = tensors["layer0.bias"].copy()
+    bias[0] = 2**30  # a bound near 2**30, stated truly in the card
+    big = {**tensors, "layer0.bias": bias,
+           "layer0.mult": np.full_like(tensors["layer0.mult"], 2**22)}
+    weight = np.abs(tensors["layer0.weight"].astype(np.int64)).reshape(len(bias), -1).sum(1)
+    card = {**model.card, "layers": [dict(spec) for spec in model.card["layers"]]}
+    card["layers"][0]["bound"] = int((weight * 255 + np.abs(bias.astype(np.int64))).max())
+    assert card["layers"][0]["bound"] * 2**22 >= 2**52
+    with pytest.raises(ModelError, match="requantisation is not exact"):
+        model_from_bytes(to_bytes(card, big), "tampered")
+
+
 def test_a_file_that_is_not_a_model_is_refused():
     with pytest.raises(ModelError, match="not a rowcast model"):
         model_from_bytes(b"\x80\x04pickle-looking bytes", "junk")

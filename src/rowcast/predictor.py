@@ -41,9 +41,9 @@ def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
     """Requantise exact integer accumulators (B, C, H, W) per channel; float64 result.
 
     Computed as floor(acc * (mult / 2**shift) + 1/2), which equals the definition above
-    step by step: mult / 2**shift is exact (a power-of-two scale), acc * mult < 2**40 so the
-    product is exact, and the sum is the definition's numerator over 2**shift, exact for
-    shift <= 52 (the model loader's limit).
+    step by step: mult / 2**shift is exact (a power-of-two scale), |acc * mult| < 2**52
+    (checked at load) so the product is exact, and the sum is the definition's numerator
+    over 2**shift, exact for shift <= 52 (the model loader's limit).
     """
     y = acc.to(torch.float64)  # a new tensor unless acc is float64 already: never a caller's
     y = y.clone() if y is acc else y

@@ -172,6 +172,8 @@ def model_from_bytes(data: bytes, origin: str) -> IntModel:
     for i, (layer, spec) in enumerate(zip(layers, card["layers"], strict=True)):
         if layer.bound != spec["bound"] or layer.bound >= EXACT_F64:
             raise ModelError(f"{origin}: layer {i} breaks its stored accumulator bound")
+        if layer.bound * int(layer.mult.max()) >= EXACT_F64 // 2:  # see requantise
+            raise ModelError(f"{origin}: layer {i}'s requantisation is not exact in float64")
     sha = hashlib.sha256(canonical_bytes(card, tensors)).digest()
     return IntModel(card["name"], card, layers, sha)
 
