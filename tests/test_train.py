@@ -11,7 +11,16 @@ from rowcast.codec import decode_batch, encode_batch
 from rowcast.network import Predictor, parameters_from_output
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
-from rowcast.train import Config, calibrate, export_checkpoint, grow, load_checkpoint, train
+from rowcast.train import (
+    Config,
+    calibrate,
+    command,
+    export_checkpoint,
+    grow,
+    load_checkpoint,
+    sensor_frame,
+    train,
+)
 
 
 def smooth_image(seed: int, size: int = 128) -> np.ndarray:
@@ -20,6 +29,20 @@ def smooth_image(seed: int, size: int = 128) -> np.ndarray:
     yy, xx = np.mgrid[:size, :size] / size
     base = np.stack([np.sin(3 * xx + seed), np.cos(2 * yy), xx * yy], axis=2) * 100 + 120
     return np.clip(base + rng.normal(0, 3, base.shape), 0, 255).astype(np.uint8)
+
+
+def test_a_sensor_frame_is_faint_noisy_and_sits_on_a_black_level():
+    """A black scene becomes noise around a black level of at most 27 per channel; a white
+    one at most half as bright plus that level; both stay whole 8-bit values, and the run's
+    command line records the fraction of such crops."""
+    rng = np.random.default_rng(3)
+    black = sensor_frame(rng, np.zeros((32, 32, 3), np.uint8))
+    assert black.dtype == np.uint8 and black.std() > 0.2
+    assert (np.median(black, axis=(0, 1)) <= 27).all()
+    white = sensor_frame(rng, np.full((32, 32, 3), 255, np.uint8))
+    assert white.mean() <= 0.5 * 255 + 27 + 3
+    assert command(Config("d", "o", sensor_fraction=0.1)).endswith(" --sensor 0.1")
+    assert "--sensor" not in command(Config("d", "o"))
 
 
 @pytest.mark.parametrize("quant", [False, True])

@@ -46,6 +46,7 @@ class Config:
     gray_fraction: float = 0.15
     cutout_fraction: float = 0.5
     dark_fraction: float = 0.15
+    sensor_fraction: float = 0.0  # of the crops not under-exposed (`sensor_frame`)
     validation: tuple[str, ...] = VALIDATION
     width: int = 48
     hidden: int = 64
@@ -64,6 +65,7 @@ def command(cfg: Config) -> str:
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     extra += f" --components {cfg.components}" * (cfg.components > 1)
     extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
+    extra += f" --sensor {cfg.sensor_fraction:g}" * (cfg.sensor_fraction > 0)
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
@@ -120,9 +122,20 @@ def _cutout_crop(rng: np.random.Generator, img: np.ndarray, c: int, photos) -> n
     return _composite(best, _random_crop(rng, photos[rng.integers(len(photos))], c))
 
 
+def sensor_frame(rng: np.random.Generator, crop: np.ndarray) -> np.ndarray:
+    """The scene as a faint sensor frame: a small gain, a black level per channel, read and
+    shot noise, rounded and clipped; what telescopes, microscopes and night cameras give."""
+    signal = crop * rng.uniform(0.03, 0.5)
+    black = rng.uniform(0.0, 24.0) + rng.uniform(-3.0, 3.0, crop.shape[-1])
+    variance = rng.uniform(0.1, 4.0) + signal * rng.uniform(0.0, 0.5)
+    noisy = signal + black + rng.normal(size=crop.shape) * np.sqrt(variance)
+    return np.clip(np.floor(noisy + 0.5), 0, 255).astype(np.uint8)
+
+
 def augment(rng: np.random.Generator, crop: np.ndarray, cfg: Config) -> np.ndarray:
     """One of the 8 flips/rotations of the square, and sometimes an under-exposure
-    (every value scaled by one factor and rounded), as dim scenes give."""
+    (every value scaled by one factor and rounded), as dim scenes give, or a faint
+    noisy sensor frame (`sensor_frame`)."""
     if rng.random() < 0.5:
         crop = crop[:, ::-1]
     if rng.random() < 0.5:
@@ -132,6 +145,8 @@ def augment(rng: np.random.Generator, crop: np.ndarray, cfg: Config) -> np.ndarr
     if rng.random() < cfg.dark_fraction:
         gain = rng.uniform(0.2, 0.9)
         crop = np.floor(crop * gain + 0.5).astype(np.uint8)
+    elif rng.random() < cfg.sensor_fraction:
+        crop = sensor_frame(rng, crop)
     return crop
 
 
@@ -362,15 +377,17 @@ def main(
     activity: bool = False,
     components: int = 1,
     depth: int = 4,
+    sensor: float = 0.0,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
-    [--hidden N --left N --activity --components 2 --depth N]; resuming with a larger head
-    or a deeper row stack grows it (see `grow`)."""
+    [--hidden N --left N --activity --components 2 --depth N --sensor F]; resuming with a
+    larger head or a deeper row stack grows it (see `grow`); --sensor is the fraction of
+    crops made faint noisy sensor frames."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
                  resume=resume, threads=threads, hidden=hidden, left=left, activity=activity,
-                 components=components, depth=depth),
+                 components=components, depth=depth, sensor_fraction=sensor),
           log=lambda s: print(s, flush=True))
 
 
@@ -412,6 +429,7 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
         "data": f"{cfg.data}: photographs box-reduced {PHOTO_SCALES}x; cutouts/ at "
                 f"{CUTOUT_SCALES}x for {cfg.cutout_fraction:.0%} of the crops (mostly object, "
                 f"over photo crops); flips/rotations, {cfg.dark_fraction:.0%} under-exposed, "
+                f"{cfg.sensor_fraction:.0%} of the rest faint noisy sensor frames, "
                 f"{cfg.gray_fraction:.0%} gray",
         "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
         "steps": history[-1].get("steps", history[-1].get("step")),
