@@ -239,12 +239,25 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
                                                  progress=progress,
                                                  methods=[e.method for e in part])
                 except (PayloadError, ValueError, RuntimeError) as exc:
-                    names = ", ".join(e.path for e in part)
-                    raise DataError(f"{src}: cannot decode {names} ({exc})") from None
+                    raise _undecodable(src, engine, part, payloads, planes, exc) from None
             for e, planes_out in zip(part, decoded, strict=True):
                 if checksum(planes_out) != e.checksum:
                     raise DataError(f"{src}: {e.path} decodes to pixels whose checksum differs")
                 yield e, planes_out
+
+
+def _undecodable(src: Path, engine: Engine, part: list[IndexEntry], payloads: list[bytes],
+                 planes: int, batch_error: Exception) -> DataError:
+    """The error for a batch that failed to decode, naming the entry at fault: each entry
+    is decoded alone until one fails (all are named if none fails alone)."""
+    for e, payload in zip(part, payloads, strict=True):
+        try:
+            codec.decode_batch(engine, [payload], planes, e.height, e.width, workers=1,
+                               methods=[e.method])
+        except (PayloadError, ValueError, RuntimeError) as exc:
+            return DataError(f"{src}: cannot decode {e.path} ({exc})")
+    names = ", ".join(e.path for e in part)
+    return DataError(f"{src}: cannot decode {names} ({batch_error})")
 
 
 def _payload(src: Path, entry: IndexEntry) -> bytes:
