@@ -18,6 +18,7 @@ from rowcast.train import (
     export_checkpoint,
     grow,
     load_checkpoint,
+    main,
     sensor_frame,
     train,
 )
@@ -84,6 +85,10 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     assert more["state"]["summary"]["steps"] > first
     assert len(more["state"]["commands"]) == 2 and "--resume" in more["state"]["commands"][1]
     assert "--hidden 80" in more["state"]["commands"][1]  # the size it continued, not 64
+
+    main(str(data), str(tmp_path / "again"), minutes=0.05, batch=4, resume=str(tmp_path / "run"))
+    again, _ = load_checkpoint(tmp_path / "again")  # the command line keeps the run's sizes
+    assert (again.hidden, again.depth, again.left) == (80, 2, 3)
 
     summary = export_checkpoint(tmp_path / "more", tmp_path / "mine.safetensors", "mine")
     for key in ("val_float_bpsp", "val_quant_bpsp", "val_integer_bpsp"):

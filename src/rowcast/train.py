@@ -372,22 +372,28 @@ def main(
     lr: float = 2e-3,
     resume: str | None = None,
     threads: int = 2,
-    hidden: int = 64,
-    left: int = 3,
+    hidden: int | None = None,
+    left: int | None = None,
     activity: bool = False,
     components: int = 1,
-    depth: int = 4,
+    depth: int | None = None,
     sensor: float = 0.0,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
-    [--hidden N --left N --activity --components 2 --depth N --sensor F]; resuming with a
-    larger head or a deeper row stack grows it (see `grow`); --sensor is the fraction of
-    crops made faint noisy sensor frames."""
+    [--hidden N --left N --activity --components 2 --depth N --sensor F]; sizes not given
+    are the defaults for a new run and the run's own when resuming; larger ones grow it (see
+    `grow`); --sensor is the fraction of crops made faint noisy sensor frames."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
+    sizes = Config(data, out)
+    if resume:
+        sizes = saved_config(json.loads((Path(resume) / "checkpoint.json").read_text()))
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
-                 resume=resume, threads=threads, hidden=hidden, left=left, activity=activity,
-                 components=components, depth=depth, sensor_fraction=sensor),
+                 resume=resume, threads=threads,
+                 hidden=sizes.hidden if hidden is None else hidden,
+                 left=sizes.left if left is None else left, activity=activity,
+                 components=components, depth=sizes.depth if depth is None else depth,
+                 sensor_fraction=sensor),
           log=lambda s: print(s, flush=True))
 
 
