@@ -213,11 +213,14 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
     tune = Tune.of(offsets, np.zeros(3, np.int64))
     if planes == 3:
         tuned = pixel_params(raw, flat_base, tune)
+        trial = Params(tuned.means, tuned.ls8, tuned.couplings.copy(), tuned.means_b,
+                       tuned.ls8_b, tuned.weight)
 
         def plane_bits(k: int, moves: np.ndarray) -> float:
-            shifted = Params(tuned.means, tuned.ls8, tuning.couple(tuned.couplings, moves),
-                             tuned.means_b, tuned.ls8_b, tuned.weight)
-            return float(bits(shifted, 1 if k == 0 else 2).sum())
+            plane, columns = (1, [0]) if k == 0 else (2, [1, 2])  # what coupling_move reads
+            for j in columns:
+                trial.couplings[:, j] = tuning.couple(tuned.couplings[:, j], moves[j])
+            return float(bits(trial, plane).sum())
 
         couplings, more = tuning.choose_couplings(plane_bits)
         tune, saved = Tune.of(offsets, couplings), saved + more
