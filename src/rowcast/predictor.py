@@ -51,17 +51,6 @@ def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
     return y.clamp_(0.0, 255.0) if layer.relu else y
 
 
-def requantise_np(acc: np.ndarray, layer: IntLayer) -> np.ndarray:
-    """`requantise` for accumulators (N, C) in a float64 numpy array (overwritten)."""
-    acc *= _scale(layer)
-    acc += 0.5
-    np.floor(acc, out=acc)
-    if layer.relu:
-        np.maximum(acc, 0.0, out=acc)
-        np.minimum(acc, 255.0, out=acc)
-    return acc
-
-
 @functools.cache
 def _scale(layer: IntLayer) -> np.ndarray:
     return layer.mult.astype(np.float64) * 2.0**-layer.shift  # exact: a power-of-two scale
@@ -100,21 +89,30 @@ class Engine:
         self.rows = model.layers[: model.depth]
         self.head1, self.head2, self.out = model.layers[model.depth :]
         self.conv = conv_fast if self_test(model) else conv_reference
+        # The decoder folds each head layer's requantisation into its weights: with
+        # s = mult / 2**shift, (acc + bias) * s + 1/2 = sum(a * w * s) + (bias * s + 1/2),
+        # exact in float64 because every term and partial sum is a multiple of 2**-shift
+        # below 2**52 of them (the loader checks bound * mult < 2**52).
+        s1, s2, s3 = (_scale(layer) for layer in (self.head1, self.head2, self.out))
         w1 = self.head1.weight[:, :, 0, 0].T.astype(np.float64)  # exact: bounds < 2**53
         self._w1_rows = torch.from_numpy(w1[: model.width]).to(_dtype(self.head1))
-        self._w1_activity = w1[w1.shape[0] - 3 :] if model.activity else None
+        self._s1, self._c1 = s1, self.head1.bias * s1 + 0.5
+        self._w1_activity = w1[w1.shape[0] - 3 :] * s1 if model.activity else None
         # The head's left window: weights of pixel x - d at rows 4(d-1)..4(d-1)+3 (R, G, B,
-        # valid). With n pixels to the left: their RGB weights in column order, and the
-        # valid planes' constant contribution.
+        # valid). With n pixels to the left: their RGB weights in column order; the valid
+        # planes' terms go in with the row (`next_row`).
         self.left = model.left
-        left = w1[model.width : model.width + 4 * self.left].reshape(self.left, 4, -1)
+        left = w1[model.width : model.width + 4 * self.left].reshape(self.left, 4, -1) * s1
         self._left = [left[:n][::-1, :3].reshape(3 * n, left.shape[2])
                       for n in range(self.left + 1)]
-        self._valid = [255.0 * left[:n, 3].sum(0) for n in range(self.left + 1)]
+        self._valid = np.cumsum(255.0 * left[:, 3], axis=0)  # row n-1: n pixels to the left
+        self._valid_rows: dict[int, np.ndarray] = {}
         # float32 where the layer's bound keeps every partial sum exact in it: 10% faster
         self._w2 = self.head2.weight[:, :, 0, 0].T.astype(
             np.float32 if self.head2.bound < EXACT_F32 else np.float64)
-        self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64)
+        self._s2, self._c2 = s2, self.head2.bias * s2 + 0.5
+        self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64) * s3
+        self._c3 = self.out.bias * s3 + 0.5
 
     # -- encoder: everything at once -------------------------------------------------------
     def parallel(self, x: np.ndarray) -> np.ndarray:
@@ -144,7 +142,8 @@ class Engine:
 
     def next_row(self, state: list[torch.Tensor], above: np.ndarray | None,
                  activity: np.ndarray) -> np.ndarray:
-        """Advance the row stack by one row; returns head-1 accumulators (B, W, hidden).
+        """Advance the row stack by one row; returns head 1's folded accumulators (W, B,
+        hidden) for the new row, with every term but those of the pixels to the left.
 
         `above` is the last decoded row (B, 3, W) uint8, or None before row 0; `activity`
         (B, 3) is the row's `family.row_activity` (unused by models without it).
@@ -157,25 +156,42 @@ class Engine:
             pair = torch.cat([state[i], a], 2)
             state[i] = a
             a = requantise(self.conv(pair, layer, pad_top=False), layer).to(torch.float32)
-        feats = a[:, :, 0].transpose(1, 2).to(self._w1_rows.dtype)  # (B, W, width)
-        constant = np.zeros((len(feats), 1, self._w1_rows.shape[1])) + self.head1.bias
+        feats = a[:, :, 0].permute(2, 0, 1).to(self._w1_rows.dtype)  # (W, B, width)
+        acc = (feats @ self._w1_rows).to(torch.float64).numpy()
+        acc *= self._s1
+        acc += self._valid_terms(len(acc))
         if self._w1_activity is not None:
-            constant += (activity @ self._w1_activity)[:, None]
-        acc = (feats @ self._w1_rows).to(torch.float64)
-        acc += torch.from_numpy(constant)
-        return acc.numpy()
+            acc += activity @ self._w1_activity
+        return acc
+
+    def _valid_terms(self, width: int) -> np.ndarray:
+        """(W, 1, hidden): head 1's folded bias and the valid planes of the pixels left of
+        each column."""
+        if width not in self._valid_rows:
+            n = np.minimum(np.arange(width), self.left)  # pixels left of each column
+            valid = np.concatenate([np.zeros((1, len(self._c1))), self._valid])[n]
+            self._valid_rows[width] = (valid + self._c1)[:, None]
+        return self._valid_rows[width]
 
     def pixel(self, acc_rows: np.ndarray, row: np.ndarray, x: int) -> np.ndarray:
-        """Raw integer outputs (B, OUTPUTS) at column x, given the current row (B, 3, W) so far."""
+        """Raw integer outputs (B, OUTPUTS) at column x, from the row's accumulators and the
+        current row (B, 3, W) so far; column x's accumulators are used up."""
+        acc = acc_rows[x]
         n = min(x, self.left)  # pixels to the left that exist
-        acc = acc_rows[:, x] + self._valid[n]
         if n:
-            pixels = row[:, :, x - n : x].transpose(0, 2, 1).reshape(len(row), 3 * n)
-            acc = acc + pixels @ self._left[n]
-        h = requantise_np(acc, self.head1)
-        acc = (h.astype(self._w2.dtype) @ self._w2).astype(np.float64) + self.head2.bias
-        h = requantise_np(acc, self.head2)
-        return requantise_np(h @ self._w3 + self.out.bias, self.out).astype(np.int64)
+            acc += row[:, :, x - n : x].transpose(0, 2, 1).reshape(len(row), 3 * n) @ self._left[n]
+        acc = (_floor_to_byte(acc).astype(self._w2.dtype) @ self._w2) * self._s2
+        acc += self._c2
+        acc = _floor_to_byte(acc) @ self._w3
+        acc += self._c3
+        return np.floor(acc, out=acc).astype(np.int64)
+
+
+def _floor_to_byte(a: np.ndarray) -> np.ndarray:
+    """floor(a) clamped to 0..255, in place: a ReLU layer's folded requantisation."""
+    np.floor(a, out=a)
+    np.maximum(a, 0.0, out=a)
+    return np.minimum(a, 255.0, out=a)
 
 
 @functools.cache
