@@ -53,16 +53,20 @@ def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
 @dataclass(frozen=True)
 class Tune:
     """An image's tuning (or a batch's, one per image): scale offsets (3, bands) or
-    (B, 3, bands), their map over all levels (`tuning.offset_map`), coupling offsets (3,)
-    or (B, 3)."""
+    (B, 3, bands), coupling offsets (3,) or (B, 3), and the offset of every level: the
+    channels' maps (`tuning.offset_map`) end to end in `levels`, channel c's offset for
+    level l at levels[origin[..., c] + l]."""
 
     offsets: np.ndarray
     couplings: np.ndarray
     levels: np.ndarray
+    origin: np.ndarray
 
     @classmethod
     def of(cls, offsets: np.ndarray, couplings: np.ndarray) -> Tune:
-        return cls(offsets, couplings, tuning.offset_map(offsets))
+        levels = tuning.offset_map(offsets)
+        starts = np.arange(levels.size, step=levels.shape[-1]).reshape(levels.shape[:-1])
+        return cls(offsets, couplings, levels.reshape(-1), starts - fam.LS_LO)
 
 
 @dataclass(frozen=True)
@@ -83,17 +87,6 @@ def _log_scales(raw: np.ndarray) -> np.ndarray:
     return np.minimum(np.maximum(raw, fam.LS_LO), fam.LS_HI)
 
 
-_PLANE = np.arange(fam.CHANNELS)
-
-
-def _offsets(tune: np.ndarray, ls8: np.ndarray) -> np.ndarray:
-    """Each subpixel's tuning offset (N, 3) from an offset map: one image's (3, levels)
-    for all N pixels, or a batch's (N, 3, levels) with one pixel per image."""
-    if tune.ndim == 2:
-        return tune[_PLANE, ls8 - fam.LS_LO]
-    return tune[np.arange(len(ls8))[:, None], _PLANE, ls8 - fam.LS_LO]
-
-
 def pixel_params(out: np.ndarray, base: np.ndarray, tune: Tune | None = None) -> Params:
     """The parameters of N pixels from raw outputs (N, outputs) and the base prediction
     (N, 3), tuned by `tune` (None: untuned)."""
@@ -101,7 +94,7 @@ def pixel_params(out: np.ndarray, base: np.ndarray, tune: Tune | None = None) ->
     ls8 = _log_scales(out[:, 1 : 2 * fam.CHANNELS : 2])
     couplings = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX),
                            fam.COUPLE_MAX)
-    shift = None if tune is None else _offsets(tune.levels, ls8)
+    shift = None if tune is None else tune.levels.take(tune.origin + ls8)  # per level
     params = Params(out[:, 0 : 2 * fam.CHANNELS : 2] + lead,
                     ls8 if shift is None else tuning.apply(ls8, shift),
                     couplings if tune is None else tuning.couple(couplings, tune.couplings))
