@@ -10,7 +10,7 @@ from rowcast import family as fam
 from rowcast.codec import decode_batch, encode_batch
 from rowcast.network import Predictor, parameters_from_output
 from rowcast.predictor import Engine
-from rowcast.quantize import load_model
+from rowcast.quantize import bundled_names, export, load_model, to_network
 from rowcast.train import (
     Config,
     calibrate,
@@ -121,3 +121,38 @@ def test_growing_the_head_keeps_what_the_network_computes(quant):
         assert torch.equal(net(x), big(x))
     with pytest.raises(SystemExit, match="shallower"):
         grow(big, hidden=16, left=5, activity=True, depth=3)
+
+
+@pytest.mark.parametrize("name", bundled_names())
+def test_a_model_file_becomes_a_network_that_exports_back_to_its_integers(name):
+    """Every bundled model turns into a quantisation-aware network whose export has the same
+    weights, biases, multipliers and shifts: training can continue from a model file."""
+    model = load_model(name)
+    card, tensors = export(to_network(model), model.name)
+    for i, layer in enumerate(model.layers):
+        assert np.array_equal(tensors[f"layer{i}.weight"], layer.weight)
+        assert np.array_equal(tensors[f"layer{i}.bias"], layer.bias)
+        assert np.array_equal(tensors[f"layer{i}.mult"], layer.mult)
+        assert card["layers"][i]["shift"] == layer.shift
+    assert card["architecture"] == model.card["architecture"]
+
+
+def test_training_continues_from_the_bundled_model_on_a_users_images(tmp_path):
+    """`--resume default` adapts the bundled model: same sizes, its steps and commands carried
+    on, and a resume that names neither a run nor a model file is refused by name."""
+    data = tmp_path / "images"
+    data.mkdir()
+    for i in range(2):
+        Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
+    main(str(data), str(tmp_path / "mine"), minutes=0.03, batch=2, resume="default")
+    net, meta = load_checkpoint(tmp_path / "mine")
+    default = load_model()
+    arch = default.card["architecture"]
+    assert (net.hidden, net.depth, net.left, net.activity) == (
+        arch["hidden"], arch["depth"], arch["left"], True) and net.quant
+    done = default.card["training"]
+    assert meta["state"]["summary"]["steps"] > done["steps"]
+    assert meta["state"]["commands"][: len(done["commands"])] == done["commands"]
+    assert "--resume default" in meta["state"]["commands"][-1]
+    with pytest.raises(SystemExit, match="nowhere: cannot read model file"):
+        main(str(data), str(tmp_path / "x"), minutes=0.01, resume=str(tmp_path / "nowhere"))

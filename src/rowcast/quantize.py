@@ -21,7 +21,7 @@ from safetensors import SafetensorError
 from safetensors.numpy import load, save
 
 from rowcast import family as fam
-from rowcast.network import Predictor
+from rowcast.network import PIXEL_STEP, Predictor
 
 FORMAT = "rowcast-model"
 VERSION = 1
@@ -120,6 +120,34 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
         **(extra or {}),
     }
     return card, tensors
+
+
+def to_network(model: IntModel) -> Predictor:
+    """A quantisation-aware float network that exports back to `model`'s integers, so that
+    training can continue from any model file (a bundled one, or one a user trained).
+
+    Only ratios of steps are fixed by the integers; every activation step is set to the
+    pixels' step, so real activations lie in 0..1 as after calibration and the weights keep
+    the scale that training gave them (Adam's steps are relative to it).
+    """
+    arch = model.card["architecture"]
+    net = Predictor(arch["width"], arch["hidden"], arch["depth"], arch["left"],
+                    arch.get("activity") is True, arch.get("components", 1))
+    gains = np.array(fam.output_gains(net.components), dtype=np.float64)
+    with torch.no_grad():
+        for i, (layer, ints) in enumerate(zip(net.layers(), model.layers, strict=True)):
+            in_step = net.in_steps()[i].double().numpy().reshape(1, -1, 1, 1)
+            w_int = ints.weight.astype(np.float64)
+            ratio = ints.mult.astype(np.float64) * 2.0**-ints.shift  # s / step, or s * gain
+            if layer.relu:
+                layer.log_step.fill_(math.log(PIXEL_STEP))
+                s = ratio * PIXEL_STEP
+            else:
+                s = ratio / gains
+            layer.weight.copy_(torch.from_numpy(w_int * s.reshape(-1, 1, 1, 1) / in_step))
+            layer.bias.copy_(torch.from_numpy(ints.bias * s))
+    net.quant = True
+    return net
 
 
 def canonical_bytes(card: dict, tensors: dict[str, np.ndarray]) -> bytes:

@@ -56,7 +56,7 @@ class Config:
     components: int = 1
     seed: int = 0
     threads: int = 2
-    resume: str | None = None  # a finished run to continue from (weights, mode, history)
+    resume: str | None = None  # a run, model file or bundled model name to continue from
 
 
 def command(cfg: Config) -> str:
@@ -297,6 +297,34 @@ def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
     return model, meta
 
 
+def starting_point(resume: str) -> tuple[Predictor, list[dict], list[str]]:
+    """(network, history, commands) to continue from: a run directory's checkpoint, or else
+    an integer model file or bundled model name (`quantize.to_network`), so that a user can
+    adapt the bundled model to their own images."""
+    if (Path(resume) / "checkpoint.json").is_file():
+        model, meta = load_checkpoint(Path(resume))
+        history = meta["state"]["history"]
+        return model, history, meta["state"].get("commands", [command(saved_config(meta))])
+    from rowcast.quantize import ModelError, load_model, to_network
+
+    try:
+        ints = load_model(Path(resume))
+    except ModelError as exc:
+        raise SystemExit(f"--resume: {exc} (neither a training run nor a model file)") from None
+    done = ints.card.get("training", {})
+    history = [{"steps": done.get("steps", 0), "minutes": done.get("minutes", 0.0),
+                "from_model": ints.sha256.hex()[:16]}]
+    return to_network(ints), history, list(done.get("commands", []))
+
+
+def resumed_sizes(resume: str) -> dict:
+    """The architecture of what `starting_point` continues: sizes the command line omits."""
+    if (Path(resume) / "checkpoint.json").is_file():
+        return asdict(saved_config(json.loads((Path(resume) / "checkpoint.json").read_text())))
+    net, _, _ = starting_point(resume)
+    return {"hidden": net.hidden, "left": net.left, "depth": net.depth}
+
+
 def train(cfg: Config, log=print) -> Predictor:
     """Run the schedule of the module docstring; returns the trained model."""
     torch.manual_seed(cfg.seed)
@@ -309,14 +337,12 @@ def train(cfg: Config, log=print) -> Predictor:
     model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components)
     history, commands, step, before = [], [], 0, 0.0
     if cfg.resume:
-        model, meta = load_checkpoint(Path(cfg.resume))
+        model, history, commands = starting_point(cfg.resume)
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
                      cfg.activity or model.activity, max(cfg.components, model.components),
                      max(cfg.depth, model.depth))
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity, components=model.components)
-        history = meta["state"]["history"]
-        commands = meta["state"].get("commands", [command(saved_config(meta))])
         step, before = history[-1]["steps"], history[-1]["minutes"]
         log(f"resuming {cfg.resume} after {step} steps, {before:.1f} min")
     commands.append(command(cfg))  # after a resume: the sizes of the model it continues
@@ -379,20 +405,18 @@ def main(
     depth: int | None = None,
     sensor: float = 0.0,
 ) -> None:
-    """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN --lr LR]
+    """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
     [--hidden N --left N --activity --components 2 --depth N --sensor F]; sizes not given
     are the defaults for a new run and the run's own when resuming; larger ones grow it (see
     `grow`); --sensor is the fraction of crops made faint noisy sensor frames."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
-    sizes = Config(data, out)
-    if resume:
-        sizes = saved_config(json.loads((Path(resume) / "checkpoint.json").read_text()))
+    sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
                  resume=resume, threads=threads,
-                 hidden=sizes.hidden if hidden is None else hidden,
-                 left=sizes.left if left is None else left, activity=activity,
-                 components=components, depth=sizes.depth if depth is None else depth,
+                 hidden=sizes["hidden"] if hidden is None else hidden,
+                 left=sizes["left"] if left is None else left, activity=activity,
+                 components=components, depth=sizes["depth"] if depth is None else depth,
                  sensor_fraction=sensor),
           log=lambda s: print(s, flush=True))
 
