@@ -4,6 +4,8 @@
     python scripts/make_golden.py tuned   # tuned/sky.png, golden-tuned.rowcast (0.2, tuning)
     python scripts/make_golden.py mixture # tiny-mixture model, golden-mixture.rowcast (0.2)
     python scripts/make_golden.py packed  # golden-packed.rowcast (0.3, format version 3)
+    python scripts/make_golden.py adaptive  # golden-adaptive.rowcast and
+                                            # golden-mixture-adaptive.rowcast (0.4, gains)
 
 Each part ran once; the files are committed, and tests check that today's code still
 decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
@@ -71,7 +73,15 @@ def mixture() -> None:
 
 def packed() -> None:
     report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
-                            GOLDEN / "golden-packed.rowcast", model=GOLDEN / "tiny.safetensors"))
+                            GOLDEN / "golden-packed.rowcast", model=GOLDEN / "tiny.safetensors",
+                            version=3))
+
+
+def adaptive() -> None:
+    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
+                            GOLDEN / "golden-adaptive.rowcast", model=GOLDEN / "tiny.safetensors"))
+    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-mixture-adaptive.rowcast",
+                            model=GOLDEN / "tiny-mixture.safetensors"))
 
 
 def report(summary) -> None:
@@ -80,4 +90,5 @@ def report(summary) -> None:
 
 
 if __name__ == "__main__":
-    {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed}[sys.argv[1]]()
+    {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed,
+     "adaptive": adaptive}[sys.argv[1]]()

@@ -116,7 +116,7 @@ def test_modes_and_methods_have_the_agreed_codes() -> None:
     """Mode and method codes are part of the format and must not drift."""
     assert MODES["L"] == 1
     assert MODES["RGB"] == 2
-    assert METHODS == {"stored": 0, "model": 1, "tuned": 2}
+    assert METHODS == {"stored": 0, "model": 1, "tuned": 2, "adaptive": 3}
 
 
 def test_round_trip_keeps_every_field_and_payload(tmp_path: Path) -> None:
@@ -258,6 +258,8 @@ def test_paths_equal_after_normalisation_are_duplicates(tmp_path: Path) -> None:
         (Entry("x", "RGB", 2, 1, "stored", bytes(32), b"\0" * 5), "expected 6"),
         (Entry("x", "RGB", 2, 1, "model", bytes(32), b"\0" * 5), "32-bit words"),
         (Entry("x", "RGB", 2, 1, "tuned", bytes(32), b"\0" * 8), "tuning header"),
+        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 16), "17-byte tuning header"),
+        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 20), "17-byte tuning header"),
     ],
 )
 def test_writer_refuses_invalid_entries(tmp_path: Path, entry: Entry, reason: str) -> None:
@@ -364,6 +366,27 @@ def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -
     data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
     new.write_bytes(bytes(data))
     with pytest.raises(ArchiveError, match="'tuned' is not defined in format version 1"):
+        read_index(new)
+
+
+def test_adaptive_entries_need_version_4_and_a_17_byte_header(tmp_path: Path) -> None:
+    """An adaptive payload is its 17-byte header and whole words; version 3 cannot hold
+    one (rowcast 0.3 would not know the method) and a version-3 file claiming one is
+    refused; version 4 keeps it."""
+    adaptive = Entry("a.png", "RGB", 5, 4, "adaptive", bytes(32), bytes(17 + 8))
+    with pytest.raises(ArchiveError, match="needs a newer format version"):
+        write_archive(tmp_path / "no.rca", MODEL, [adaptive], version=3)
+    assert not (tmp_path / "no.rca").exists()
+    new = tmp_path / "new.rca"
+    write_archive(new, MODEL, [adaptive])
+    assert read_index(new)[1][0].method == "adaptive"
+    assert read_payload(new, read_index(new)[1][0]) == adaptive.payload
+    data = bytearray(new.read_bytes())
+    data[8:10] = struct.pack("<H", 3)
+    end = 45 + len(MODEL.name.encode())
+    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
+    new.write_bytes(bytes(data))
+    with pytest.raises(ArchiveError, match="'adaptive' is not defined in format version 3"):
         read_index(new)
 
 
@@ -477,17 +500,25 @@ def test_every_single_byte_flip_is_caught_or_harmless(tmp_path: Path) -> None:
 
 
 def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) -> None:
-    """Writers write version 3 unless told otherwise: the same entries, offsets and payloads
-    as version 2, with an index of variable-length numbers, no offsets, deflated by zlib
-    (the index bytes are checked against an independent packing of FORMAT.md's layout)."""
+    """Version 3 holds the same entries, offsets and payloads as version 2, with an index of
+    variable-length numbers, no offsets, deflated by zlib (the index bytes are checked
+    against an independent packing of FORMAT.md's layout); version 4, what writers write
+    unless told otherwise, lays them out as version 3 does."""
     entries = SAMPLE + [stored(f"orchard/cam{i:02d}/2026-11-30T06-00.png", "L", 2, 2, i)
                         for i in range(12)]
     (tmp_path / "v2").mkdir()
     (tmp_path / "v3").mkdir()
     old = write_sample(tmp_path / "v2", entries, version=2)
     new = tmp_path / "v3" / "sample.rca"
-    write_archive(new, MODEL, entries)
+    write_archive(new, MODEL, entries, version=3)
     assert struct.unpack("<H", new.read_bytes()[8:10]) == (3,)
+    newest = tmp_path / "v4.rca"
+    write_archive(newest, MODEL, entries)
+    assert struct.unpack("<H", newest.read_bytes()[8:10]) == (4,)
+    assert read_index(newest) == read_index(new)
+    four, three = newest.read_bytes(), new.read_bytes()
+    (at4, size4), (at3, size3) = locate_index(four), locate_index(three)
+    assert four[at4 : at4 + size4] == three[at3 : at3 + size3]
     assert read_index(new) == read_index(old)
     for entry in read_index(new)[1]:
         assert read_payload(new, entry) == read_payload(old, entry)

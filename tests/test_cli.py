@@ -24,7 +24,9 @@ from safetensors.numpy import load_file, save_file
 from typer.testing import CliRunner, Result
 
 import rowcast
+from rowcast.archive import VERSION_METHODS
 from rowcast.cli import app
+from rowcast.tuning import HEADER_BYTES
 
 TINY = Path(__file__).parent / "golden" / "tiny.safetensors"
 TINY_NAME = "golden-tiny"
@@ -660,7 +662,7 @@ def test_verify_fails_on_a_flipped_payload_byte(flipped: tuple[Path, str]) -> No
 
 def test_an_undecodable_entry_in_a_batch_is_the_one_named(tmp_path: Path) -> None:
     """Entries of one size decode together, yet when one of them cannot be decoded (here its
-    tuning header's reserved byte is set), the error names that entry alone."""
+    tuning header's reserved bits are set), the error names that entry alone."""
     folder = tmp_path / "cams"
     folder.mkdir()
     for i in range(3):
@@ -668,16 +670,16 @@ def test_an_undecodable_entry_in_a_batch_is_the_one_named(tmp_path: Path) -> Non
     made = tmp_path / "cams.rca"
     rowcast.compress([folder], made)
     entries = {e.path: e for e in rowcast.read_index(made)[1]}
-    assert all(e.method == "tuned" for e in entries.values())
+    assert all(e.method in HEADER_BYTES for e in entries.values())
     data = bytearray(made.read_bytes())
-    data[entries["cam1.png"].offset + 15] = 1
+    data[entries["cam1.png"].offset + HEADER_BYTES[entries["cam1.png"].method] - 1] |= 0x10
     made.write_bytes(bytes(data))
 
     check = rowcast.verify(made)
 
     assert len(check.problems) == 1 and "cam1.png" in check.problems[0]
     assert "cam0.png" not in check.problems[0] and "cam2.png" not in check.problems[0]
-    assert "reserved byte" in check.problems[0]
+    assert "reserved bits" in check.problems[0]
 
 
 def test_decompress_of_a_flipped_payload_byte_restores_nothing(
@@ -826,15 +828,17 @@ def test_api_round_trip_and_verify(made: Made, tmp_path: Path) -> None:
 def test_api_compress_writes_an_older_format_version_for_older_readers(
     made: Made, tmp_path: Path
 ) -> None:
-    """version=2 keeps tuning, version=1 codes without it (rowcast 0.1 had no `tuned`);
-    the same pixels come back from each, and versions no reader knows are usage errors."""
-    for version in (3, 2, 1):
+    """version=3 and 2 tune without surprise gains (rowcast 0.3 and 0.2 have no
+    `adaptive`), version=1 codes without tuning (rowcast 0.1 had no `tuned`); the same
+    pixels come back from each, and versions no reader knows are usage errors."""
+    for version in (4, 3, 2, 1):
         dest = tmp_path / f"v{version}.rca"
         rowcast.compress([made.photos], dest, model=TINY, version=version)
         assert dest.read_bytes()[8:10] == bytes([version, 0])
         methods = {e.method for e in rowcast.read_index(dest)[1]}
-        assert ("tuned" in methods) == (version > 1)
+        assert methods <= VERSION_METHODS[version]
+        assert bool(methods & {"tuned", "adaptive"}) == (version > 1)
         assert rowcast.verify(dest, against=made.photos, model=TINY).ok
-    with pytest.raises(rowcast.UsageError, match="cannot write format version 4"):
-        rowcast.compress([made.photos], tmp_path / "v4.rca", model=TINY, version=4)
-    assert not (tmp_path / "v4.rca").exists()
+    with pytest.raises(rowcast.UsageError, match="cannot write format version 5"):
+        rowcast.compress([made.photos], tmp_path / "v5.rca", model=TINY, version=5)
+    assert not (tmp_path / "v5.rca").exists()

@@ -7,13 +7,16 @@ Do not regenerate the golden files to make it pass: bump the format version inst
 (see DEVELOPERS.md)."""
 
 import numpy as np
+import pytest
 from conftest import GOLDEN, TINY
 from PIL import Image
 
 import rowcast
 from rowcast import family as fam
+from rowcast.archive import read_payload
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
+from rowcast.tuning import HEADER_BYTES, unpack
 
 
 def test_golden_archive_still_decodes_to_the_committed_images():
@@ -64,7 +67,7 @@ def test_two_component_golden_archive_decodes_and_re_encodes_to_the_same_bytes(t
 
 def test_packed_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
     """Format version 3 (packed index): both golden image sets in one archive, decoded and
-    re-encoded byte for byte by the default writer."""
+    re-encoded byte for byte in format version 3."""
     decoded = dict(rowcast.decode_entries(GOLDEN / "golden-packed.rowcast", model=TINY))
     assert sorted(e.path for e in decoded) == ["leaf.png", "orchard.png", "sky.png"]
     assert sorted(e.method for e in decoded) == ["model", "model", "tuned"]
@@ -74,5 +77,28 @@ def test_packed_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path
         expected = original[None] if original.ndim == 2 else original.transpose(2, 0, 1)
         assert np.array_equal(planes, expected)
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"], out, model=TINY)
+    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"], out, model=TINY, version=3)
     assert out.read_bytes() == (GOLDEN / "golden-packed.rowcast").read_bytes()
+
+
+@pytest.mark.parametrize(("archive", "model", "folders"), [
+    ("golden-adaptive.rowcast", TINY, ("images", "tuned")),
+    ("golden-mixture-adaptive.rowcast", GOLDEN / "tiny-mixture.safetensors", ("tuned",)),
+])
+def test_adaptive_golden_archives_decode_and_re_encode_to_the_same_bytes(tmp_path, archive,
+                                                                         model, folders):
+    """Format version 4 (surprise gains), with one and two components: the sky entry is
+    adaptive with nonzero gains on every plane; decoded and re-encoded byte for byte by the
+    default writer."""
+    decoded = dict(rowcast.decode_entries(GOLDEN / archive, model=model))
+    for entry, planes in decoded.items():
+        folder = "tuned" if entry.path == "sky.png" else "images"
+        original = np.asarray(Image.open(GOLDEN / folder / entry.path))
+        expected = original[None] if original.ndim == 2 else original.transpose(2, 0, 1)
+        assert np.array_equal(planes, expected)
+        assert entry.method == ("adaptive" if entry.path == "sky.png" else "model")
+    (sky,) = [e for e in decoded if e.path == "sky.png"]
+    assert unpack(read_payload(GOLDEN / archive, sky)[: HEADER_BYTES["adaptive"]])[2].all()
+    out = tmp_path / "again.rowcast"
+    rowcast.compress([GOLDEN / f for f in folders], out, model=model)
+    assert out.read_bytes() == (GOLDEN / archive).read_bytes()

@@ -1,4 +1,4 @@
-"""Specification of per-image tuning: the 16-byte header, the bands, the choices."""
+"""Specification of per-image tuning: the 16- and 17-byte headers, the bands, the choices."""
 
 import itertools
 
@@ -14,25 +14,53 @@ from rowcast.tuning import (
     band_of,
     choose,
     choose_couplings,
+    choose_gains,
     offset_map,
     pack,
     unpack,
 )
 
 
-def test_header_holds_every_offset_in_16_bytes():
+def test_header_holds_every_offset_in_16_bytes_and_the_gains_in_one_more():
     """Scale offsets -8..7 for 3 channels x 8 bands and coupling offsets -128..127 pack into
-    16 bytes and come back unchanged; the last byte is zero and checked."""
+    16 bytes (method "tuned": the last byte zero and checked); with surprise gains -8..7
+    for R, G, B into 17 (method "adaptive": the last nibble zero and checked); all come back
+    unchanged, and a tuned header reads as zero gains."""
     rng = np.random.default_rng(1)
-    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3)) for _ in range(50)]
-    for offsets, couplings in cases + [(np.full((3, 8), -8), np.array([-128, 127, 0]))]:
-        header = pack(offsets, couplings)
-        assert len(header) == HEADER_BYTES == 16 and header[-1] == 0
-        back = unpack(header)
-        assert np.array_equal(back[0], offsets) and np.array_equal(back[1], couplings)
+    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3), rng.integers(-8, 8, 3))
+             for _ in range(50)]
+    extremes = (np.full((3, 8), -8), np.array([-128, 127, 0]), np.array([-8, 7, -1]))
+    for offsets, couplings, gains in cases + [extremes]:
+        tuned, adaptive = pack(offsets, couplings), pack(offsets, couplings, gains)
+        assert len(tuned) == HEADER_BYTES["tuned"] == 16 and tuned[-1] == 0
+        assert len(adaptive) == HEADER_BYTES["adaptive"] == 17 and adaptive[-1] >> 4 == 0
+        assert adaptive[:15] == tuned[:15]
+        for header, want in ((tuned, np.zeros(3)), (adaptive, gains)):
+            back = unpack(header)
+            assert np.array_equal(back[0], offsets) and np.array_equal(back[1], couplings)
+            assert np.array_equal(back[2], want)
     assert pack(np.zeros((3, 8), np.int64), np.zeros(3, np.int64)) == bytes(16)
-    with pytest.raises(ValueError, match="reserved byte"):
+    with pytest.raises(ValueError, match="reserved bits"):
         unpack(bytes(15) + b"\1")
+    with pytest.raises(ValueError, match="reserved bits"):
+        unpack(bytes(16) + b"\x10")
+
+
+def test_gain_choice_is_exact_per_plane_and_prefers_zero_on_ties():
+    """Each plane's gain minimises its own cost (planted optima), the bits reported saved
+    are the true difference, a flat cost keeps 0, and planes not coded keep 0."""
+    best = {0: 5, 1: -3, 2: 7}
+
+    def cost(c, gains):  # (K, 1) candidates -> (K,) bits
+        return (gains[:, 0] - best[c]) ** 2 + 10.0
+
+    gains, saved = choose_gains(cost, 3)
+    assert gains.tolist() == [5, -3, 7]
+    assert saved == sum(best[c] ** 2 for c in range(3))
+    flat, none = choose_gains(lambda c, g: np.full(len(g), 4.0), 3)
+    assert flat.tolist() == [0, 0, 0] and none == 0
+    gray, _ = choose_gains(cost, 1)
+    assert gray.tolist() == [5, 0, 0]
 
 
 def test_coupling_choice_never_costs_more_and_finds_a_planted_optimum():

@@ -112,9 +112,10 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
              version: int = archive.VERSION) -> Summary:
     """Compress image files and directories into one archive at `dest` (atomic).
 
-    With `tune` (the default) each image may carry its own scale tuning (`tuning`).
-    `version` is the format version to write: the newest unless readers of an older rowcast
-    need 2 (rowcast 0.2) or 1 (rowcast 0.1; it has no tuning, so none is done).
+    With `tune` (the default) each image may carry its own tuning (`tuning`) and surprise
+    gains (`surprise`). `version` is the format version to write: the newest unless readers
+    of an older rowcast need 3 (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1
+    (rowcast 0.1; it has no tuning, so none is done).
 
     Every input is checked from its header first; then images are read and coded in
     groups of up to 32 (or 4 megapixels), same-sized ones together, and written in input
@@ -124,7 +125,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     if version not in archive.VERSION_METHODS:
         known = ", ".join(map(str, archive.VERSION_METHODS))
         raise UsageError(f"{dest}: cannot write format version {version} (only {known})")
-    tune = tune and "tuned" in archive.VERSION_METHODS[version]
+    allowed = archive.VERSION_METHODS[version] if tune else ()
+    method = next((m for m in ("adaptive", "tuned") if m in allowed), "model")
     if dest.is_dir():
         raise UsageError(f"{dest}: is a directory")
     if dest.exists() and not force:
@@ -157,7 +159,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                 coded: dict[int, codec.Coded] = {}
                 for members in by_shape.values():
                     images = [group[j][1] for j in members]
-                    coded.update(zip(members, codec.encode_batch(engine, images, tune=tune),
+                    coded.update(zip(members, codec.encode_batch(engine, images, method),
                                      strict=True))
                 for j, (name_j, planes_j, mode_j) in enumerate(group):
                     yield name_j, planes_j, mode_j, coded[j]

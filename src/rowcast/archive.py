@@ -3,7 +3,8 @@
 Layout (docs/FORMAT.md): a header naming the model, the payloads back to back, an index
 protected by CRC32, and a fixed-size trailer that locates the index. Versions 1 and 2 hold
 fixed-width index records; version 3 packs them (variable-length numbers, offsets implied
-by the order, the whole deflated), which matters for small images with long paths.
+by the order, the whole deflated), which matters for small images with long paths; version
+4 adds the method "adaptive" (tuning with surprise gains, `rowcast.surprise`).
 """
 
 from __future__ import annotations
@@ -20,18 +21,19 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 MAGIC = b"ROWCAST\xe5"
-VERSION = 3  # what writers write unless told otherwise
+VERSION = 4  # what writers write unless told otherwise
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
-METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2}
+METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2, "adaptive": 3}
 
 _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
 _METHOD_NAMES: dict[int, str] = {code: name for name, code in METHODS.items()}
-# Version 2 added method 2; version 3 packed the index.
-VERSION_METHODS: dict[int, frozenset[str]] = {1: frozenset({"stored", "model"}),
-                                              2: frozenset(METHODS), 3: frozenset(METHODS)}
+# Version 2 added method 2; version 3 packed the index; version 4 added method 3.
+VERSION_METHODS: dict[int, frozenset[str]] = {
+    1: frozenset({"stored", "model"}), 2: frozenset({"stored", "model", "tuned"}),
+    3: frozenset({"stored", "model", "tuned"}), 4: frozenset(METHODS)}
 PACKED_FROM = 3  # the first version with a packed index
 
 _PREFIX = struct.Struct("<8sH")  # magic, version
@@ -55,7 +57,8 @@ _MIN_PACKED_RECORD = 1 + 1 + _CODES.size + 1 + 1 + _DIGEST_BYTES + 1
 _MAX_INFLATION = 1032  # deflate never expands more than this: a bound on honest lengths
 _MAX_NUMBER_BYTES = 10  # a variable-length number below 2**64
 _WORD_BYTES = 4
-_TUNING_BYTES = 16  # rowcast.tuning.HEADER_BYTES: the layout is fixed here too
+# bytes ahead of the coder's words (rowcast.tuning.HEADER_BYTES: the layout is fixed here too)
+_TUNING_BYTES: dict[str, int] = {"model": 0, "tuned": 16, "adaptive": 17}
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 
 
@@ -167,11 +170,12 @@ def _check_payload_length(mode: str, method: str, width: int, height: int, lengt
         expected = width * height * _BYTES_PER_PIXEL[mode]
         if length != expected:
             raise _InvalidError(f"stored payload is {length} bytes, expected {expected}")
-    elif length % _WORD_BYTES:
-        raise _InvalidError(f"{method} payload is {length} bytes, "
-                            "not a whole number of 32-bit words")
-    elif method == "tuned" and length < _TUNING_BYTES:
-        raise _InvalidError(f"tuned payload is {length} bytes, shorter than its tuning header")
+    else:
+        header = _TUNING_BYTES[method]
+        if length < header or (length - header) % _WORD_BYTES:
+            after = f" after its {header}-byte tuning header" if header else ""
+            raise _InvalidError(f"{method} payload is {length} bytes, not whole 32-bit "
+                                f"words{after}")
 
 
 def _check_entry(entry: Entry) -> str:

@@ -14,12 +14,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rowcast import entropy, tuning
+from rowcast import entropy, surprise, tuning
 from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
-from rowcast.tables import TABLE_TOTAL, all_tables, mixture_tables, table_rows
+from rowcast.tables import LEVELS, TABLE_TOTAL, all_tables, mixture_tables, table_rows
 from rowcast.workers import run_split, shares
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
@@ -29,8 +29,9 @@ PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (en
 
 @dataclass(frozen=True)
 class Coded:
-    """One image's payload, its method ("tuned": 16 bytes of tuning, then the coder's
-    words; "model": the words alone) and the model's cross-entropy for it, in bits."""
+    """One image's payload, its method ("adaptive" or "tuned": 17 or 16 bytes of tuning,
+    then the coder's words; "model": the words alone) and the model's cross-entropy for it,
+    in bits."""
 
     payload: bytes
     cross_entropy: float
@@ -53,20 +54,34 @@ def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
 @dataclass(frozen=True)
 class Tune:
     """An image's tuning (or a batch's, one per image): scale offsets (3, bands) or
-    (B, 3, bands), coupling offsets (3,) or (B, 3), and the offset of every level: the
-    channels' maps (`tuning.offset_map`) end to end in `levels`, channel c's offset for
-    level l at levels[origin[..., c] + l]."""
+    (B, 3, bands), coupling offsets (3,) or (B, 3), surprise gains (3,) or (B, 3), and the
+    offset of every level: the channels' maps (`tuning.offset_map`) end to end in `levels`,
+    channel c's offset for level l at levels[origin[..., c] + l]."""
 
     offsets: np.ndarray
     couplings: np.ndarray
+    gains: np.ndarray
     levels: np.ndarray
     origin: np.ndarray
 
+    @property
+    def tuned(self) -> np.ndarray:
+        """The tuned level of every level, laid out as `levels`."""
+        untuned = np.tile(np.arange(fam.LS_LO, fam.LS_HI + 1), self.levels.size // LEVELS)
+        return tuning.apply(untuned, self.levels)
+
     @classmethod
-    def of(cls, offsets: np.ndarray, couplings: np.ndarray) -> Tune:
+    def of(cls, offsets: np.ndarray, couplings: np.ndarray,
+           gains: np.ndarray | None = None) -> Tune:
         levels = tuning.offset_map(offsets)
         starts = np.arange(levels.size, step=levels.shape[-1]).reshape(levels.shape[:-1])
-        return cls(offsets, couplings, levels.reshape(-1), starts - fam.LS_LO)
+        gains = np.zeros_like(couplings) if gains is None else gains
+        return cls(offsets, couplings, gains, levels.reshape(-1), starts - fam.LS_LO)
+
+    @property
+    def method(self) -> str:
+        """The coding method that carries this tuning."""
+        return "adaptive" if self.gains.any() else "tuned"
 
 
 @dataclass(frozen=True)
@@ -87,14 +102,17 @@ def _log_scales(raw: np.ndarray) -> np.ndarray:
     return np.minimum(np.maximum(raw, fam.LS_LO), fam.LS_HI)
 
 
-def pixel_params(out: np.ndarray, base: np.ndarray, tune: Tune | None = None) -> Params:
+def pixel_params(out: np.ndarray, base: np.ndarray, tune: Tune | None = None,
+                 tune_levels: bool = True) -> Params:
     """The parameters of N pixels from raw outputs (N, outputs) and the base prediction
-    (N, 3), tuned by `tune` (None: untuned)."""
+    (N, 3), tuned by `tune` (None: untuned); with `tune_levels` false the levels stay
+    untuned, for a caller that looks up their tuned forms itself."""
     lead = fam.MU_SCALE * base
     ls8 = _log_scales(out[:, 1 : 2 * fam.CHANNELS : 2])
     couplings = np.minimum(np.maximum(out[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX),
                            fam.COUPLE_MAX)
-    shift = None if tune is None else tune.levels.take(tune.origin + ls8)  # per level
+    tuned = tune is not None and tune_levels
+    shift = tune.levels.take(tune.origin + ls8) if tuned else None  # per level
     params = Params(out[:, 0 : 2 * fam.CHANNELS : 2] + lead,
                     ls8 if shift is None else tuning.apply(ls8, shift),
                     couplings if tune is None else tuning.couple(couplings, tune.couplings))
@@ -123,8 +141,9 @@ def _on_grid(mu4: np.ndarray) -> np.ndarray:
 
 def plane_rows(p: Params, c: int, residuals: np.ndarray,
                levels_moved: np.ndarray | None = None) -> tuple:
-    """(table rows of the first component, of the second or None) for plane c (N,), or
-    (K, N) with every level moved by each of K offsets `levels_moved` (K, 1)."""
+    """(table rows of the first component, of the second or None) for plane c (N,), with
+    the levels moved by `levels_moved` ((N,): each its own), or (K, N) moved by each of K
+    offsets (K, 1) or K moves (K, N)."""
     move = coupling_move(p.couplings, c, residuals)
 
     def rows(means: np.ndarray, ls8: np.ndarray) -> np.ndarray:
@@ -134,41 +153,64 @@ def plane_rows(p: Params, c: int, residuals: np.ndarray,
     return rows(p.means, p.ls8), None if p.weight is None else rows(p.means_b, p.ls8_b)
 
 
+def surprise_sums(p: Params, known: np.ndarray, residuals: np.ndarray,
+                  shape: tuple[int, int]) -> np.ndarray:
+    """S (N, P) of an image's N = H * W pixels (`surprise`), from its tuned parameters, its
+    values (N, P) and residuals (N, 3)."""
+    q = [surprise.surprises(p.ls8[:, c], _on_grid(p.means[:, c] + coupling_move(
+        p.couplings, c, residuals)), known[:, c]) for c in range(known.shape[1])]
+    return surprise.neighbour_sums(np.stack(q).reshape(-1, *shape)).reshape(len(q), -1).T
+
+
+def level_moves(sums: np.ndarray, c: int, gains: np.ndarray | int) -> np.ndarray:
+    """How far the surprise feedback moves the levels of plane c with surprise sums `sums`
+    (`surprise.move`, before clamping)."""
+    return (gains * surprise.feedback_table(c + 2)[sums] + 8) >> 4
+
+
 def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
     return np.take(all_tables(), rows, axis=0) if rows_b is None else mixture_tables(
         rows, rows_b, weight)
 
 
 def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-                 tune: Tune | None = None) -> tuple[np.ndarray, np.ndarray]:
+                 tune: Tune | None = None,
+                 sums: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(symbols (N*P,), tables (N*P, 256)) in coding order for a band of image rows.
 
     out: raw outputs (h, W, outputs); rgb and base: (3, h, W) for the same rows; tune:
-    the image's tuning, or None.
+    the image's tuning, or None; sums: the band's `surprise_sums` (N, P), needed when the
+    tuning has surprise gains.
     """
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base, tune)
     residuals = known - flat_base
-    rows = [plane_rows(p, c, residuals) for c in range(planes)]  # in coding order:
+    gains = 0 if tune is None else tune.gains
+    rows = [plane_rows(p, c, residuals, level_moves(sums[:, c], c, gains[c]) if np.any(gains)
+                       else None) for c in range(planes)]  # in coding order:
     first = np.stack([r[0] for r in rows], axis=1).reshape(-1)  # pixel-major, then plane
     second = None if p.weight is None else np.stack([r[1] for r in rows], 1).reshape(-1)
     weight = None if p.weight is None else p.weight[:, :planes].reshape(-1)
     return known[:, :planes].reshape(-1), _tables(first, second, weight)
 
 
-def encode_batch(engine: Engine, images: list[np.ndarray], tune: bool = True,
+def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
                  workers: int | None = None) -> list[Coded]:
-    """Payloads for same-sized images, each (P, H, W) uint8; with `tune`, each image gets
-    the scale tuning that shortens it (method "tuned") if that saves more than it takes.
-    Like decoding, a large batch is shared by single-threaded processes (`workers.shares`);
-    the bytes are the same for any split."""
+    """Payloads for same-sized images, each (P, H, W) uint8. `method` is the richest
+    method allowed: with "adaptive", each image gets the tuning and surprise gains that
+    shorten it (method "adaptive", or "tuned" when every gain is zero) if that saves more
+    than its header takes; "tuned" tunes without gains (format versions 2 and 3); "model"
+    never tunes. Like decoding, a large batch is shared by single-threaded processes
+    (`workers.shares`); the bytes are the same for any split."""
+    if method not in ("adaptive", "tuned", "model"):
+        raise ValueError(f"no encoder for method {method!r}")
     parts = [images[a:b] for a, b in shares(len(images), workers)]
-    return [c for part in run_split(lambda part, _: _encode(engine, part, tune), parts)
+    return [c for part in run_split(lambda part, _: _encode(engine, part, method), parts)
             for c in part]
 
 
-def _encode(engine: Engine, images: list[np.ndarray], tune: bool) -> list[Coded]:
+def _encode(engine: Engine, images: list[np.ndarray], method: str) -> list[Coded]:
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -176,14 +218,15 @@ def _encode(engine: Engine, images: list[np.ndarray], tune: bool) -> list[Coded]
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes, tune))
+            coded.append(_encode_one(out, rgb, planes, method))
     return coded
 
 
-def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
-                  planes: int) -> Tune | None:
+def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
+                  method: str = "adaptive") -> Tune | None:
     """The tuning that gives this image the shortest code (scale offsets band by band, then
-    coupling offsets), or None when it would not save the bytes of its header."""
+    coupling offsets, then with method "adaptive" surprise gains), or None when it would not
+    save the bytes of its header."""
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     raw = out.reshape(-1, out.shape[-1])
@@ -217,24 +260,46 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray,
 
         couplings, more = tuning.choose_couplings(plane_bits)
         tune, saved = Tune.of(offsets, couplings), saved + more
-    return tune if saved > 8 * tuning.HEADER_BYTES else None
+    if method == "adaptive":
+        tuned = pixel_params(raw, flat_base, tune)
+        sums = surprise_sums(tuned, known[:, :planes], residuals, out.shape[:2])
+        gains, more = tuning.choose_gains(
+            lambda c, k: bits(tuned, c, level_moves(sums[:, c], c, k)).sum(axis=1), planes)
+        tune, saved = Tune.of(tune.offsets, tune.couplings, gains), saved + more
+    return tune if saved > 8 * tuning.HEADER_BYTES[tune.method] else None
 
 
-def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, tune: bool) -> Coded:
+def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
+              method: str) -> tuple[Tune | None, np.ndarray | None]:
+    """(the tuning an image is coded with, or None; its `surprise_sums` when the tuning has
+    surprise gains, else None): what `image_tables` needs for the encoder's tables."""
+    chosen = None if method == "model" else choose_tuning(out, rgb, base, planes, method)
+    if chosen is None or not chosen.gains.any():
+        return chosen, None
+    known = rgb.reshape(3, -1).T.astype(np.int64)
+    tuned = pixel_params(out.reshape(-1, out.shape[-1]), base.reshape(3, -1).T, chosen)
+    return chosen, surprise_sums(tuned, known[:, :planes], known - base.reshape(3, -1).T,
+                                 out.shape[:2])
+
+
+def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> Coded:
     coder, bits = entropy.encoder(), 0.0
     base = base_prediction(rgb)
-    chosen = choose_tuning(out, rgb, base, planes) if tune else None
+    chosen, sums = tuning_of(out, rgb, base, planes, method)
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
-        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, chosen)
+        pixels = slice(y * out.shape[1], (y + rows_per_chunk) * out.shape[1])
+        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, chosen,
+                                       None if sums is None else sums[pixels])
         entropy.encode(coder, symbols, tables)
         total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
         bits += entropy.cross_entropy_bits(symbols, tables, total=total)
     if chosen is None:
         return Coded(entropy.finish(coder), bits)
-    header = tuning.pack(chosen.offsets, chosen.couplings)
-    return Coded(header + entropy.finish(coder), bits, "tuned")
+    gains = chosen.gains if chosen.method == "adaptive" else None
+    header = tuning.pack(chosen.offsets, chosen.couplings, gains)
+    return Coded(header + entropy.finish(coder), bits, chosen.method)
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
@@ -272,20 +337,22 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
         return payloads, None
     offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
     couplings = np.zeros((len(payloads), 3), np.int64)
+    gains = np.zeros((len(payloads), 3), np.int64)
     words = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
-        if method == "tuned":
-            if len(payload) < tuning.HEADER_BYTES:
+        if method in tuning.HEADER_BYTES:
+            size = tuning.HEADER_BYTES[method]
+            if len(payload) < size:
                 raise entropy.PayloadError("payload is shorter than its tuning header")
             try:
-                offsets[i], couplings[i] = tuning.unpack(payload[: tuning.HEADER_BYTES])
+                offsets[i], couplings[i], gains[i] = tuning.unpack(payload[:size])
             except ValueError as exc:
                 raise entropy.PayloadError(str(exc)) from None
-            payload = payload[tuning.HEADER_BYTES :]
+            payload = payload[size:]
         elif method != "model":
             raise ValueError(f"no decoder for method {method!r}")
         words.append(payload)
-    return words, Tune.of(offsets, couplings)
+    return words, Tune.of(offsets, couplings, gains)
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
@@ -296,6 +363,32 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
     except AssertionError:  # constriction's word for data its models cannot have produced
         raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
                                    "or another model)") from None
+
+
+SUMS = 4 * surprise.Q_MAX + 1  # sums of up to four surprises
+
+
+@functools.cache
+def _moved_level_rows() -> np.ndarray:
+    """The decoder's surprise feedback in one lookup: `table_rows(0, level)` of level l
+    moved for gain k, plane c and sum S, flat, at ((k + 8) * 3 + c) * LEVELS * SUMS +
+    (l - LS_LO) * SUMS + S."""
+    levels = np.arange(fam.LS_LO, fam.LS_HI + 1)[:, None]
+    out = np.empty((len(surprise.GAINS), fam.CHANNELS, len(levels), SUMS), np.int64)
+    for c in range(fam.CHANNELS):
+        feedback = surprise.feedback_table(c + 2)  # sums past a plane's range never occur
+        feedback = np.pad(feedback, (0, SUMS - len(feedback)), mode="edge")
+        for i, k in enumerate(surprise.GAINS):
+            out[i, c] = table_rows(0, surprise.move(levels, feedback, k))
+    return out.reshape(-1).astype(np.int32)  # small, to stay in cache
+
+
+@functools.cache
+def _signed_surprises() -> np.ndarray:
+    """`surprise.surprise_table` over signed distances 4v - mu4, flat, at
+    (l - LS_LO) * (2 DISTANCES - 1) + DISTANCES - 1 + 4v - mu4: the decoder's one lookup."""
+    q = surprise.surprise_table()
+    return np.concatenate([q[:, :0:-1], q], axis=1).reshape(-1).astype(np.int8)
 
 
 def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, planes: int,
@@ -309,36 +402,78 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
     models = _models()
     decode = type(decoders[0]).decode
     tables = all_tables()
+    # Each image's tuned levels, looked up per pixel by `tune.origin + level` as the parts
+    # of table indices they give: the table row's level part, or with surprise feedback
+    # the level parts of its moved-row and surprise lookups (`_moved_level_rows`,
+    # `_signed_surprises`).
+    feedback = tune is not None and bool(tune.gains.any())
+    if tune is not None and not feedback:
+        row_map = table_rows(0, tune.tuned)
+    if feedback:  # surprises of the row above and of the current row, (W, 3, B)
+        q_above = np.full((width, fam.CHANNELS, batch), surprise.NEUTRAL, np.int64)
+        q_row = q_above.copy()  # planes a gray image lacks stay neutral
+        moved, signed = _moved_level_rows(), _signed_surprises()
+        gains = tune.gains.T  # (3, B)
+        lead_map = ((tune.gains + 8) * fam.CHANNELS + np.arange(3)) * LEVELS * SUMS
+        lead_map = (tune.tuned - fam.LS_LO) * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
+        q_map = (tune.tuned - fam.LS_LO) * (2 * surprise.DISTANCES - 1) + surprise.DISTANCES - 1
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
         row = img[:, :, y]
         for x in range(width):
             base = base_at(row, above, x)
-            p = pixel_params(engine.pixel(acc_rows, row, x), base, tune)
-            level_rows = table_rows(0, p.ls8)  # a table's row is its level's row + its mean
+            p = pixel_params(engine.pixel(acc_rows, row, x), base, tune, tune_levels=False)
+            if tune is None:  # a table's row is its level's row + its mean
+                level_rows = table_rows(0, p.ls8)
+            else:
+                at = tune.origin + p.ls8
+                if feedback:  # and the neighbours' surprises
+                    lead, q_lead = lead_map.take(at), q_map.take(at)
+                    near = q_above[x] + (q_row[x - 1] if x else surprise.NEUTRAL)  # (3, B)
+                else:
+                    level_rows = row_map.take(at)
             if p.weight is not None:
-                level_rows_b = table_rows(0, p.ls8_b)
+                ls8_b = p.ls8_b if tune is None else tuning.apply(p.ls8_b, tune.levels.take(at))
+                level_rows_b = table_rows(0, ls8_b)
                 pure = (p.weight % fam.WEIGHT_ONE == 0).any(axis=0)
+            earlier = None  # the surprises of this pixel's planes so far, summed
             for c in range(planes):
                 move = coupling_move(p.couplings, c, residuals)
-                rows = level_rows[:, c] + _on_grid(p.means[:, c] + move)
+                mean = _on_grid(p.means[:, c] + move)
+                if feedback:
+                    sums = near[c] if c == 0 else near[c] + earlier
+                    rows = moved.take(lead[:, c] + sums) + mean
+                else:
+                    rows = level_rows[:, c] + mean
                 if p.weight is None:
                     if trace is not None:
                         trace(y, x, c, tables[rows])
                     found = map(models.__getitem__, rows.tolist())
                 else:
+                    if feedback:
+                        levels_b = tuning.apply(ls8_b[:, c], level_moves(sums, c, gains[c]))
+                        level_rows_b[:, c] = table_rows(0, levels_b)
                     rows_b = level_rows_b[:, c] + _on_grid(p.means_b[:, c] + move)
                     mixed = mixture_tables(rows, rows_b, p.weight[:, c])
                     if trace is not None:
                         trace(y, x, c, mixed)
                     found = _mixed_models(models, mixed, rows, rows_b, p.weight[:, c], pure[c])
-                row[:, c, x] = list(map(decode, decoders, found))
-                residuals[:, c] = row[:, c, x] - base[:, c]
+                values = np.fromiter(map(decode, decoders, found), np.int64, batch)
+                row[:, c, x] = values
+                residuals[:, c] = values - base[:, c]
+                if feedback:
+                    values *= 4
+                    values += q_lead[:, c] - mean
+                    q_row[x, c] = q = signed.take(values)
+                    if c + 1 < planes:
+                        earlier = q if c == 0 else earlier + q
             if planes == 1:
                 row[:, 1:, x] = row[:, :1, x]
                 residuals[:, 1:] = residuals[:, :1]
             misses += np.abs(residuals)
+        if feedback:
+            q_above, q_row = q_row, q_above
         progress(batch)
     return img[:, :planes]
 

@@ -1,0 +1,81 @@
+"""Surprise feedback: how far the neighbours fell from their predictions moves the next scale.
+
+A network trained on many images predicts a typical spread; within one image, misses come
+in patches (grain on a textured wall, sensor noise in the shadows, a burst of detail), and
+a pixel's channels miss together. So every coded subpixel leaves its *surprise*: the
+distance of its value v from its mean, in quarters of its scale,
+q = min(63, floor(|4v - mu4| exp(-l/8) + 1/2)), with mu4 the final mean (quarter pixels) and
+l the tuned level (eighths of a natural log). Before channel c of a pixel is coded, S is
+the sum of the surprises of the same channel at the left and at the upper pixel and of the
+channels already coded in this pixel (n = c + 2 terms; a neighbour outside the image
+counts as NEUTRAL, a miss of one scale), and
+F = floor(8 (log2(1 + S / 4n) - 1) + 1/2), which is 0 when the neighbours missed by one
+scale on average. The level moves by floor((k F + 8) / 16), with k (-8..7) the image's
+gain for that channel, chosen by the encoder: k > 0 widens the scale after surprises and
+narrows it after hits.
+
+Both tables are integers computed with Python's decimal arithmetic, which is correctly
+rounded and the same everywhere; at run time everything is integer numpy.
+"""
+
+from __future__ import annotations
+
+import decimal
+import functools
+
+import numpy as np
+
+from rowcast import family as fam
+
+Q_MAX = 63  # surprises saturate at 63 quarter scales (about 16 scales)
+NEUTRAL = 4  # the surprise of a neighbour outside the image: one scale
+GAINS = np.arange(-8, 8)  # a channel's gain is one signed 4-bit nibble
+DISTANCES = fam.MU_HI + 1  # |4v - mu4| <= max(4 * 255 - MU_LO, MU_HI) = MU_HI
+_CTX = decimal.Context(prec=40)
+
+
+@functools.cache
+def surprise_table() -> np.ndarray:
+    """q for every level and distance, (LEVELS, DISTANCES) int64: the number of j = 1..63
+    with d >= (j - 1/2) exp(l/8), which is the rounding of the module docstring (never a
+    tie: (j - 1/2) exp(l/8) is not an integer)."""
+    rows = []
+    for level in range(fam.LS_LO, fam.LS_HI + 1):
+        scale = _CTX.exp(_CTX.divide(decimal.Decimal(level), fam.LS_SCALE))
+        steps = [int(_CTX.multiply(decimal.Decimal(j) - decimal.Decimal("0.5"), scale)
+                     .to_integral_value(rounding=decimal.ROUND_CEILING))
+                 for j in range(1, Q_MAX + 1)]
+        rows.append(np.searchsorted(np.array(steps), np.arange(DISTANCES), side="right"))
+    return np.array(rows, dtype=np.int64)
+
+
+@functools.cache
+def feedback_table(terms: int) -> np.ndarray:
+    """F for every sum S = 0 .. terms * Q_MAX of `terms` surprises, int64: the largest m
+    with S >= 4 terms (2**((m + 15/2) / 8) - 1), which is the rounding of the module
+    docstring (never a tie: 2**(odd / 16) is irrational)."""
+    steps = []
+    for m in range(-8, 40):  # past the largest F: floor(8 log2(1 + Q_MAX / 4) - 15/2) = 25
+        power = _CTX.power(2, _CTX.divide(2 * m + 15, 16))
+        bound = _CTX.multiply(fam.MU_SCALE * terms, power - 1)
+        steps.append(int(bound.to_integral_value(rounding=decimal.ROUND_CEILING)))
+    sums = np.arange(terms * Q_MAX + 1)
+    return np.searchsorted(np.array(steps), sums, side="right").astype(np.int64) - 9
+
+
+def surprises(levels: np.ndarray, means: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """q of subpixels from their tuned levels, final means (quarter pixels) and values."""
+    return surprise_table()[levels - fam.LS_LO, np.abs(4 * values.astype(np.int64) - means)]
+
+
+def neighbour_sums(q: np.ndarray) -> np.ndarray:
+    """S of every subpixel of an image from the surprises q (P, H, W) of its planes: the
+    same plane's left and upper neighbours plus the planes before it in the pixel."""
+    padded = np.pad(q, ((0, 0), (1, 0), (1, 0)), constant_values=NEUTRAL)
+    earlier = np.cumsum(q, axis=0) - q
+    return padded[:, :-1, 1:] + padded[:, 1:, :-1] + earlier
+
+
+def move(levels: np.ndarray, feedback: np.ndarray, gains: np.ndarray | int) -> np.ndarray:
+    """Levels moved by floor((k F + 8) / 16), clamped to the family's range."""
+    return np.minimum(np.maximum(levels + ((gains * feedback + 8) >> 4), fam.LS_LO), fam.LS_HI)

@@ -1,0 +1,88 @@
+"""Specification of the surprise feedback: its integer tables follow their definitions
+(checked against Python's decimal arithmetic and against float formulas), neighbours count
+as documented, and moves stay on the family's grid."""
+
+import decimal
+
+import numpy as np
+
+from rowcast import family as fam
+from rowcast.surprise import (
+    DISTANCES,
+    NEUTRAL,
+    Q_MAX,
+    feedback_table,
+    move,
+    neighbour_sums,
+    surprise_table,
+    surprises,
+)
+
+CTX = decimal.Context(prec=50)
+
+
+def exact_surprise(level: int, d4: int) -> int:
+    """min(63, floor(d4 exp(-level/8) + 1/2)) with 50-digit decimals."""
+    x = CTX.multiply(d4, CTX.exp(CTX.divide(-level, 8))) + decimal.Decimal("0.5")
+    return min(Q_MAX, int(x.to_integral_value(rounding=decimal.ROUND_FLOOR)))
+
+
+def exact_feedback(terms: int, s: int) -> int:
+    """floor(8 (log2(1 + s / 4 terms) - 1) + 1/2) with 50-digit decimals."""
+    log2 = CTX.divide(CTX.ln(CTX.add(1, CTX.divide(s, 4 * terms))), CTX.ln(2))
+    x = CTX.multiply(8, log2 - 1) + decimal.Decimal("0.5")
+    return int(x.to_integral_value(rounding=decimal.ROUND_FLOOR))
+
+
+def test_surprise_table_is_the_rounded_distance_in_quarter_scales():
+    """Every level at a spread of distances (both ends included) matches the decimal
+    definition; the whole table matches the float formula; it starts at 0, never falls as
+    the distance grows, and saturates at 63."""
+    table = surprise_table()
+    assert table.shape == (fam.LS_HI - fam.LS_LO + 1, DISTANCES)
+    for level in range(fam.LS_LO, fam.LS_HI + 1):
+        for d in sorted(set(range(0, DISTANCES, 23)) | {1, 2, 3, 4, 5, DISTANCES - 1}):
+            assert table[level - fam.LS_LO, d] == exact_surprise(level, d), (level, d)
+    levels = np.arange(fam.LS_LO, fam.LS_HI + 1)[:, None]
+    floats = np.floor(np.arange(DISTANCES) * np.exp(-levels / 8) + 0.5)
+    assert np.array_equal(table, np.minimum(Q_MAX, floats))
+    assert (table[:, 0] == 0).all() and (np.diff(table, axis=1) >= 0).all()
+    assert table[0 - fam.LS_LO, 4] == NEUTRAL  # a miss of one pixel at scale 1 (level 0)
+
+
+def test_feedback_is_zero_for_a_miss_of_one_scale_and_follows_its_definition():
+    """For 2, 3 and 4 terms, every sum matches the decimal definition; a mean surprise of
+    one scale (the neutral value) gives 0, hits give -8, the largest sums +25."""
+    for terms in (2, 3, 4):
+        table = feedback_table(terms)
+        assert len(table) == terms * Q_MAX + 1
+        assert [int(f) for f in table] == [exact_feedback(terms, s) for s in range(len(table))]
+        assert table[terms * NEUTRAL] == 0 and table[0] == -8 and table[-1] == 25
+        assert (np.diff(table) >= 0).all()
+
+
+def test_a_subpixels_sum_counts_left_above_and_the_earlier_planes_of_its_pixel():
+    """Against a plain loop: same plane left and above (NEUTRAL outside the image), plus
+    every plane before it at the same pixel."""
+    rng = np.random.default_rng(3)
+    q = rng.integers(0, Q_MAX + 1, (3, 5, 6))
+    sums = neighbour_sums(q)
+    for c in range(3):
+        for y in range(5):
+            for x in range(6):
+                left = q[c, y, x - 1] if x else NEUTRAL
+                up = q[c, y - 1, x] if y else NEUTRAL
+                assert sums[c, y, x] == left + up + q[:c, y, x].sum()
+    assert sums.max() <= 4 * Q_MAX
+
+
+def test_moves_widen_after_surprises_narrow_after_hits_and_stay_on_the_grid():
+    """A positive gain raises the level after big surprises and lowers it after hits, a
+    zero gain or a neutral neighbourhood moves nothing, and results stay in LS_LO..LS_HI."""
+    levels = np.array([0, 0, fam.LS_HI, fam.LS_LO])
+    feedback = np.array([25, -8, 25, -8])
+    assert move(levels, feedback, 7).tolist() == [11, -3, fam.LS_HI, fam.LS_LO]
+    assert move(levels, feedback, 0).tolist() == levels.tolist()
+    assert move(levels, np.zeros(4, np.int64), -8).tolist() == levels.tolist()
+    assert surprises(np.array([0, 8]), np.array([400, 400]), np.array([101, 110])).tolist() == [
+        4, min(Q_MAX, int(np.floor(40 * np.exp(-1) + 0.5)))]
