@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import hashlib
+import os
+import stat
 import struct
 import unicodedata
 import zlib
@@ -202,6 +204,24 @@ def test_existing_destination_is_refused_without_force(tmp_path: Path) -> None:
     with pytest.raises(ArchiveError, match=r"keep\.rca: already exists"):
         write_archive(dest, MODEL, SAMPLE)
     assert dest.read_bytes() == b"precious"
+
+
+@pytest.mark.skipif(os.name != "posix", reason="POSIX file modes")
+@pytest.mark.parametrize("umask", [0o022, 0o077])
+def test_an_archive_gets_the_mode_of_any_new_file(tmp_path: Path, umask: int) -> None:
+    """Like a file that open() creates (0o666 less the umask, POSIX), not the private
+    0o600 of the temporary file it was written through; the umask is left as it was."""
+    before = os.umask(umask)
+    try:
+        dest = tmp_path / "shared.rca"
+        write_archive(dest, MODEL, SAMPLE)
+        plain = tmp_path / "plain"
+        plain.write_bytes(b"")
+        assert os.umask(umask) == umask
+    finally:
+        os.umask(before)
+    assert stat.S_IMODE(dest.stat().st_mode) == stat.S_IMODE(plain.stat().st_mode)
+    assert stat.S_IMODE(dest.stat().st_mode) == 0o666 & ~umask
 
 
 def test_force_overwrites_the_destination(tmp_path: Path) -> None:

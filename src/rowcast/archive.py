@@ -294,6 +294,7 @@ def write_archive(
         raise ArchiveError(f"{dest}: {problem}") from None
     fd, temp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
     try:
+        os.chmod(temp, _new_file_mode())  # mkstemp's 0o600 would hide it from the group
         with os.fdopen(fd, "wb") as out:
             size = _write_body(out, header, entries, dest, version)
             out.flush()
@@ -304,6 +305,13 @@ def write_archive(
         raise
     _fsync_directory(dest.parent)
     return size
+
+
+def _new_file_mode() -> int:
+    """The mode that open() gives a new file: 0o666 less the process's umask."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
 
 
 class _Cursor:
