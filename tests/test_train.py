@@ -138,13 +138,16 @@ def test_a_model_file_becomes_a_network_that_exports_back_to_its_integers(name):
 
 
 def test_training_continues_from_the_bundled_model_on_a_users_images(tmp_path):
-    """`--resume default` adapts the bundled model: same sizes, its steps and commands carried
-    on, and a resume that names neither a run nor a model file is refused by name."""
+    """`--resume default --export FILE` adapts the bundled model to a directory without
+    validation images and writes a model file that codes exactly: same sizes, its steps and
+    commands carried on; a resume that names neither a run nor a model file is refused."""
     data = tmp_path / "images"
     data.mkdir()
     for i in range(2):
         Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
-    main(str(data), str(tmp_path / "mine"), minutes=0.03, batch=2, resume="default")
+    mine = tmp_path / "orchard.safetensors"
+    main(str(data), str(tmp_path / "mine"), minutes=0.03, batch=2, resume="default",
+         export=str(mine))
     net, meta = load_checkpoint(tmp_path / "mine")
     default = load_model()
     arch = default.card["architecture"]
@@ -154,5 +157,13 @@ def test_training_continues_from_the_bundled_model_on_a_users_images(tmp_path):
     assert meta["state"]["summary"]["steps"] > done["steps"]
     assert meta["state"]["commands"][: len(done["commands"])] == done["commands"]
     assert "--resume default" in meta["state"]["commands"][-1]
+    model = load_model(mine)
+    assert model.name == "orchard" and model.card["architecture"] == arch
+    assert model.card["training"]["validation"].startswith("none")
+    assert "val_integer_bpsp" not in model.card["training"]
+    image = smooth_image(7, 20).transpose(2, 0, 1).copy()
+    (coded,) = encode_batch(Engine(model), [image])
+    decoded = decode_batch(Engine(model), [coded.payload], 3, 20, 20, methods=[coded.method])
+    assert np.array_equal(decoded[0], image)
     with pytest.raises(SystemExit, match="nowhere: cannot read model file"):
         main(str(data), str(tmp_path / "x"), minutes=0.01, resume=str(tmp_path / "nowhere"))

@@ -404,11 +404,13 @@ def main(
     components: int = 1,
     depth: int | None = None,
     sensor: float = 0.0,
+    export: str | None = None,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
-    [--hidden N --left N --activity --components 2 --depth N --sensor F]; sizes not given
-    are the defaults for a new run and the run's own when resuming; larger ones grow it (see
-    `grow`); --sensor is the fraction of crops made faint noisy sensor frames."""
+    [--hidden N --left N --activity --components 2 --depth N --sensor F] [--export FILE];
+    sizes not given are the defaults for a new run and the run's own when resuming; larger
+    ones grow it (see `grow`); --sensor is the fraction of crops made faint noisy sensor
+    frames; --export writes the finished run's integer model file, named for its stem."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
@@ -419,12 +421,9 @@ def main(
                  components=components, depth=sizes["depth"] if depth is None else depth,
                  sensor_fraction=sensor),
           log=lambda s: print(s, flush=True))
-
-
-if __name__ == "__main__":
-    import typer
-
-    typer.run(main)
+    if export:
+        summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
+        print(f"{export}: model {Path(export).stem}, {json.dumps(summary)}", flush=True)
 
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
@@ -445,7 +444,8 @@ def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
 
 
 def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
-    """Write the integer model of a finished run, with validation figures in its card."""
+    """Write the integer model of a finished run, with validation figures in its card (when
+    the run's data held validation images)."""
     from rowcast.quantize import export, save_model, to_bytes
 
     net, meta = load_checkpoint(run)
@@ -453,7 +453,6 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
         raise SystemExit(f"{run}: the run has not reached quantisation-aware training")
     cfg = saved_config(meta)
     _, _, held = load_pools(cfg)
-    tiles = validation_set(held)
     history = meta["state"]["history"]
     summary = {
         "data": f"{cfg.data}: photographs box-reduced {PHOTO_SCALES}x; cutouts/ at "
@@ -461,16 +460,25 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
                 f"over photo crops); flips/rotations, {cfg.dark_fraction:.0%} under-exposed, "
                 f"{cfg.sensor_fraction:.0%} of the rest faint noisy sensor frames, "
                 f"{cfg.gray_fraction:.0%} gray",
-        "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)",
+        "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)"
+                      if held else "none (no validation images in the data)",
         "steps": history[-1].get("steps", history[-1].get("step")),
         "minutes": round(history[-1]["minutes"], 1),
         "commands": meta["state"].get("commands", [command(cfg)]),
-        "val_float_bpsp": round(evaluate(net, tiles, False), 4),
-        "val_quant_bpsp": round(evaluate(net, tiles, True), 4),
     }
-    card, tensors = export(net, name)
-    summary["val_integer_bpsp"] = round(integer_bits_per_subpixel(to_bytes(card, tensors),
-                                                                  tiles), 4)
+    if held:
+        tiles = validation_set(held)
+        summary["val_float_bpsp"] = round(evaluate(net, tiles, False), 4)
+        summary["val_quant_bpsp"] = round(evaluate(net, tiles, True), 4)
+        card, tensors = export(net, name)
+        summary["val_integer_bpsp"] = round(integer_bits_per_subpixel(to_bytes(card, tensors),
+                                                                      tiles), 4)
     card, tensors = export(net, name, {"training": summary})
     save_model(dest, card, tensors)
     return summary
+
+
+if __name__ == "__main__":
+    import typer
+
+    typer.run(main)
