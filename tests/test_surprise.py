@@ -77,12 +77,12 @@ def test_a_subpixels_sum_counts_left_above_and_the_earlier_planes_of_its_pixel()
 
 
 def test_moves_widen_after_surprises_narrow_after_hits_and_stay_on_the_grid():
-    """A positive gain raises the level after big surprises and lowers it after hits, a
+    """A gain raises the level after big surprises and lowers it after hits, a
     zero gain or a neutral neighbourhood moves nothing, and results stay in LS_LO..LS_HI."""
     levels = np.array([0, 0, fam.LS_HI, fam.LS_LO])
     feedback = np.array([25, -8, 25, -8])
     assert move(levels, feedback, 7).tolist() == [11, -3, fam.LS_HI, fam.LS_LO]
     assert move(levels, feedback, 0).tolist() == levels.tolist()
-    assert move(levels, np.zeros(4, np.int64), -8).tolist() == levels.tolist()
+    assert move(levels, np.zeros(4, np.int64), 15).tolist() == levels.tolist()
     assert surprises(np.array([0, 8]), np.array([400, 400]), np.array([101, 110])).tolist() == [
         4, min(Q_MAX, int(np.floor(40 * np.exp(-1) + 0.5)))]

@@ -23,13 +23,13 @@ from rowcast.tuning import (
 
 def test_header_holds_every_offset_in_16_bytes_and_the_gains_in_one_more():
     """Scale offsets -8..7 for 3 channels x 8 bands and coupling offsets -128..127 pack into
-    16 bytes (method "tuned": the last byte zero and checked); with surprise gains -8..7
+    16 bytes (method "tuned": the last byte zero and checked); with surprise gains 0..15
     for R, G, B into 17 (method "adaptive": the last nibble zero and checked); all come back
     unchanged, and a tuned header reads as zero gains."""
     rng = np.random.default_rng(1)
-    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3), rng.integers(-8, 8, 3))
+    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3), rng.integers(0, 16, 3))
              for _ in range(50)]
-    extremes = (np.full((3, 8), -8), np.array([-128, 127, 0]), np.array([-8, 7, -1]))
+    extremes = (np.full((3, 8), -8), np.array([-128, 127, 0]), np.array([15, 0, 8]))
     for offsets, couplings, gains in cases + [extremes]:
         tuned, adaptive = pack(offsets, couplings), pack(offsets, couplings, gains)
         assert len(tuned) == HEADER_BYTES["tuned"] == 16 and tuned[-1] == 0
@@ -49,13 +49,13 @@ def test_header_holds_every_offset_in_16_bytes_and_the_gains_in_one_more():
 def test_gain_choice_is_exact_per_plane_and_prefers_zero_on_ties():
     """Each plane's gain minimises its own cost (planted optima), the bits reported saved
     are the true difference, a flat cost keeps 0, and planes not coded keep 0."""
-    best = {0: 5, 1: -3, 2: 7}
+    best = {0: 5, 1: 15, 2: 7}
 
     def cost(c, gains):  # (K, 1) candidates -> (K,) bits
         return (gains[:, 0] - best[c]) ** 2 + 10.0
 
     gains, saved = choose_gains(cost, 3)
-    assert gains.tolist() == [5, -3, 7]
+    assert gains.tolist() == [5, 15, 7]
     assert saved == sum(best[c] ** 2 for c in range(3))
     flat, none = choose_gains(lambda c, g: np.full(len(g), 4.0), 3)
     assert flat.tolist() == [0, 0, 0] and none == 0

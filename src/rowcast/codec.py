@@ -371,7 +371,7 @@ SUMS = 4 * surprise.Q_MAX + 1  # sums of up to four surprises
 @functools.cache
 def _moved_level_rows() -> np.ndarray:
     """The decoder's surprise feedback in one lookup: `table_rows(0, level)` of level l
-    moved for gain k, plane c and sum S, flat, at ((k + 8) * 3 + c) * LEVELS * SUMS +
+    moved for gain k, plane c and sum S, flat, at (k * 3 + c) * LEVELS * SUMS +
     (l - LS_LO) * SUMS + S."""
     levels = np.arange(fam.LS_LO, fam.LS_HI + 1)[:, None]
     out = np.empty((len(surprise.GAINS), fam.CHANNELS, len(levels), SUMS), np.int64)
@@ -414,7 +414,7 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
         q_row = q_above.copy()  # planes a gray image lacks stay neutral
         moved, signed = _moved_level_rows(), _signed_surprises()
         gains = tune.gains.T  # (3, B)
-        lead_map = ((tune.gains + 8) * fam.CHANNELS + np.arange(3)) * LEVELS * SUMS
+        lead_map = (tune.gains * fam.CHANNELS + np.arange(3)) * LEVELS * SUMS
         lead_map = (tune.tuned - fam.LS_LO) * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
         q_map = (tune.tuned - fam.LS_LO) * (2 * surprise.DISTANCES - 1) + surprise.DISTANCES - 1
     for y in range(height):

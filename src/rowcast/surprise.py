@@ -10,9 +10,9 @@ the sum of the surprises of the same channel at the left and at the upper pixel 
 channels already coded in this pixel (n = c + 2 terms; a neighbour outside the image
 counts as NEUTRAL, a miss of one scale), and
 F = floor(8 (log2(1 + S / 4n) - 1) + 1/2), which is 0 when the neighbours missed by one
-scale on average. The level moves by floor((k F + 8) / 16), with k (-8..7) the image's
-gain for that channel, chosen by the encoder: k > 0 widens the scale after surprises and
-narrows it after hits.
+scale on average. The level moves by floor((k F + 8) / 16), with k (0..15) the image's
+gain for that channel, chosen by the encoder: the scale widens after surprises and narrows
+after hits, the more so the larger k.
 
 Both tables are integers computed with Python's decimal arithmetic, which is correctly
 rounded and the same everywhere; at run time everything is integer numpy.
@@ -29,7 +29,7 @@ from rowcast import family as fam
 
 Q_MAX = 63  # surprises saturate at 63 quarter scales (about 16 scales)
 NEUTRAL = 4  # the surprise of a neighbour outside the image: one scale
-GAINS = np.arange(-8, 8)  # a channel's gain is one signed 4-bit nibble
+GAINS = np.arange(16)  # a channel's gain is one 4-bit nibble (negative ones were no use)
 DISTANCES = fam.MU_HI + 1  # |4v - mu4| <= max(4 * 255 - MU_LO, MU_HI) = MU_HI
 _CTX = decimal.Context(prec=40)
 

@@ -51,14 +51,19 @@ def couple(couplings: np.ndarray, offsets: np.ndarray) -> np.ndarray:
 
 
 def _nibbles(values: np.ndarray) -> bytes:
-    """Signed values -8..7 as nibbles, low nibble first (an odd count ends in a zero one)."""
+    """Values -8..15 as nibbles (two's complement below 0), low nibble first (an odd count
+    ends in a zero one)."""
     nibbles = (np.append(values, np.zeros(len(values) % 2, np.int64)) & 0xF).astype(np.uint8)
     return (nibbles[0::2] | (nibbles[1::2] << 4)).tobytes()
 
 
-def _signed_nibbles(raw: bytes) -> np.ndarray:
+def _unsigned_nibbles(raw: bytes) -> np.ndarray:
     data = np.frombuffer(raw, np.uint8)
-    nibbles = np.stack([data & 0xF, data >> 4], axis=1).reshape(-1).astype(np.int64)
+    return np.stack([data & 0xF, data >> 4], axis=1).reshape(-1).astype(np.int64)
+
+
+def _signed_nibbles(raw: bytes) -> np.ndarray:
+    nibbles = _unsigned_nibbles(raw)
     return np.where(nibbles >= 8, nibbles - 16, nibbles)
 
 
@@ -66,7 +71,7 @@ def pack(offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None = 
     """The header of method "tuned" (16 bytes: scale offsets (3, 8) as nibbles,
     channel-major, low nibble first; the coupling offsets (3,) as signed bytes; a zero
     byte), or with surprise gains (3,) of method "adaptive" (17 bytes: the same 15, then
-    the gains as nibbles R, G, B and a zero nibble)."""
+    the gains 0..15 as nibbles R, G, B and a zero nibble)."""
     head = _nibbles(offsets.reshape(-1)) + couplings.astype(np.int8).tobytes()
     return head + (b"\0" if gains is None else _nibbles(gains))
 
@@ -80,7 +85,7 @@ def unpack(header: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     offsets = _signed_nibbles(header[:SCALE_BYTES]).reshape(fam.CHANNELS, -1)
     couplings = np.frombuffer(header[SCALE_BYTES : SCALE_BYTES + 3], np.int8).astype(np.int64)
     tail = header[SCALE_BYTES + 3 :]
-    gains = np.zeros(3, np.int64) if len(tail) == 1 else _signed_nibbles(tail)[:3]
+    gains = np.zeros(3, np.int64) if len(tail) == 1 else _unsigned_nibbles(tail)[:3]
     return offsets, couplings, gains
 
 
@@ -129,7 +134,7 @@ def choose_gains(cost, planes: int) -> tuple[np.ndarray, float]:
     that minimises cost(c, gains) (bits (K,) for K candidate gains (K, 1)). A plane's gain
     moves only its own levels, so the choice is exact; ties go to the gain nearest zero."""
     gains = np.zeros(3, np.int64)
-    candidates = GAINS[np.argsort(np.abs(GAINS), kind="stable")][:, None]  # zero first
+    candidates = GAINS[:, None]  # zero first: ties keep the smaller gain
     saved = 0.0
     for c in range(planes):
         bits = cost(c, candidates)
