@@ -278,8 +278,8 @@ def test_paths_equal_after_normalisation_are_duplicates(tmp_path: Path) -> None:
         (Entry("x", "RGB", 2, 1, "stored", bytes(32), b"\0" * 5), "expected 6"),
         (Entry("x", "RGB", 2, 1, "model", bytes(32), b"\0" * 5), "32-bit words"),
         (Entry("x", "RGB", 2, 1, "tuned", bytes(32), b"\0" * 8), "tuning header"),
-        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 16), "17-byte tuning header"),
-        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 20), "17-byte tuning header"),
+        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 17), "18-byte tuning header"),
+        (Entry("x", "RGB", 2, 1, "adaptive", bytes(32), b"\0" * 20), "18-byte tuning header"),
     ],
 )
 def test_writer_refuses_invalid_entries(tmp_path: Path, entry: Entry, reason: str) -> None:
@@ -389,11 +389,11 @@ def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -
         read_index(new)
 
 
-def test_adaptive_entries_need_version_4_and_a_17_byte_header(tmp_path: Path) -> None:
-    """An adaptive payload is its 17-byte header and whole words; version 3 cannot hold
+def test_adaptive_entries_need_version_4_and_an_18_byte_header(tmp_path: Path) -> None:
+    """An adaptive payload is its 18-byte header and whole words; version 3 cannot hold
     one (rowcast 0.3 would not know the method) and a version-3 file claiming one is
     refused; version 4 keeps it."""
-    adaptive = Entry("a.png", "RGB", 5, 4, "adaptive", bytes(32), bytes(17 + 8))
+    adaptive = Entry("a.png", "RGB", 5, 4, "adaptive", bytes(32), bytes(18 + 8))
     with pytest.raises(ArchiveError, match="needs a newer format version"):
         write_archive(tmp_path / "no.rca", MODEL, [adaptive], version=3)
     assert not (tmp_path / "no.rca").exists()

@@ -662,24 +662,24 @@ def test_verify_fails_on_a_flipped_payload_byte(flipped: tuple[Path, str]) -> No
 
 def test_an_undecodable_entry_in_a_batch_is_the_one_named(tmp_path: Path) -> None:
     """Entries of one size decode together, yet when one of them cannot be decoded (here its
-    tuning header's reserved bits are set), the error names that entry alone."""
+    tuning header's reserved byte is set), the error names that entry alone."""
     folder = tmp_path / "cams"
     folder.mkdir()
     for i in range(3):
         Image.fromarray(smooth(16, 16, 3, i), "RGB").save(folder / f"cam{i}.png")
     made = tmp_path / "cams.rca"
-    rowcast.compress([folder], made)
+    rowcast.compress([folder], made, version=3)  # tuned entries: their last header byte is 0
     entries = {e.path: e for e in rowcast.read_index(made)[1]}
-    assert all(e.method in HEADER_BYTES for e in entries.values())
+    assert all(e.method == "tuned" for e in entries.values())
     data = bytearray(made.read_bytes())
-    data[entries["cam1.png"].offset + HEADER_BYTES[entries["cam1.png"].method] - 1] |= 0x10
+    data[entries["cam1.png"].offset + HEADER_BYTES["tuned"] - 1] = 1
     made.write_bytes(bytes(data))
 
     check = rowcast.verify(made)
 
     assert len(check.problems) == 1 and "cam1.png" in check.problems[0]
     assert "cam0.png" not in check.problems[0] and "cam2.png" not in check.problems[0]
-    assert "reserved bits" in check.problems[0]
+    assert "reserved byte" in check.problems[0]
 
 
 def test_decompress_of_a_flipped_payload_byte_restores_nothing(

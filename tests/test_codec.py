@@ -99,11 +99,11 @@ def test_scale_tuning_never_costs_more_and_saves_on_real_photos(default_engine, 
     assert sum(len(c.payload) for c in encode_batch(default_engine, rgb64, "tuned")) < 0.99 * plain
 
 
-def test_surprise_gains_never_cost_more_and_save_on_real_photos(default_engine, rgb64, gray64):
-    """Every gain choice includes 0 (the tuned coding), so no image's cross-entropy grows
-    (beyond float rounding of the search's sums) and an image without gains is coded as
-    tuned; on the held-out RGB thumbnails the adaptive payloads, 17-byte headers included,
-    are more than 0.5% smaller than the tuned ones."""
+def test_feedback_gains_never_cost_more_and_save_on_real_photos(default_engine, rgb64, gray64):
+    """Every choice of bias and scale gains includes 0 (the tuned coding), so no image's
+    cross-entropy grows (beyond float rounding of the search's sums) and an image without
+    gains is coded as tuned; on the held-out RGB thumbnails the adaptive payloads, 18-byte
+    headers included, are more than 1% smaller than the tuned ones."""
     for images in (rgb64, gray64):
         tuned = encode_batch(default_engine, images, "tuned")
         adaptive = encode_batch(default_engine, images)
@@ -112,7 +112,7 @@ def test_surprise_gains_never_cost_more_and_save_on_real_photos(default_engine, 
             assert a.method == "adaptive" or a.payload == t.payload
         if images is rgb64:
             size = sum(len(c.payload) for c in adaptive)
-            assert size < 0.995 * sum(len(c.payload) for c in tuned)
+            assert size < 0.99 * sum(len(c.payload) for c in tuned)
 
 
 def test_encoder_and_decoder_tables_are_identical(default_engine, rgb64):

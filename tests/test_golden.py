@@ -87,9 +87,9 @@ def test_packed_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path
 ])
 def test_adaptive_golden_archives_decode_and_re_encode_to_the_same_bytes(tmp_path, archive,
                                                                          model, folders):
-    """Format version 4 (surprise gains), with one and two components: the sky entry is
-    adaptive with nonzero gains on every plane; decoded and re-encoded byte for byte by the
-    default writer."""
+    """Format version 4 (the neighbours' feedback), with one and two components: the sky
+    entry is adaptive with nonzero scale and bias gains on every plane; decoded and
+    re-encoded byte for byte by the default writer."""
     decoded = dict(rowcast.decode_entries(GOLDEN / archive, model=model))
     for entry, planes in decoded.items():
         folder = "tuned" if entry.path == "sky.png" else "images"
@@ -98,7 +98,8 @@ def test_adaptive_golden_archives_decode_and_re_encode_to_the_same_bytes(tmp_pat
         assert np.array_equal(planes, expected)
         assert entry.method == ("adaptive" if entry.path == "sky.png" else "model")
     (sky,) = [e for e in decoded if e.path == "sky.png"]
-    assert unpack(read_payload(GOLDEN / archive, sky)[: HEADER_BYTES["adaptive"]])[2].all()
+    _, _, gains, biases = unpack(read_payload(GOLDEN / archive, sky)[: HEADER_BYTES["adaptive"]])
+    assert gains.all() and biases.all()
     out = tmp_path / "again.rowcast"
     rowcast.compress([GOLDEN / f for f in folders], out, model=model)
     assert out.read_bytes() == (GOLDEN / archive).read_bytes()

@@ -1,4 +1,4 @@
-"""Specification of per-image tuning: the 16- and 17-byte headers, the bands, the choices."""
+"""Specification of per-image tuning: the 16- and 18-byte headers, the bands, the choices."""
 
 import itertools
 
@@ -21,29 +21,28 @@ from rowcast.tuning import (
 )
 
 
-def test_header_holds_every_offset_in_16_bytes_and_the_gains_in_one_more():
+def test_header_holds_every_offset_in_16_bytes_and_the_gains_in_two_more():
     """Scale offsets -8..7 for 3 channels x 8 bands and coupling offsets -128..127 pack into
-    16 bytes (method "tuned": the last byte zero and checked); with surprise gains 0..15
-    for R, G, B into 17 (method "adaptive": the last nibble zero and checked); all come back
+    16 bytes (method "tuned": the last byte zero and checked); with the feedback's scale
+    gains 0..15 and bias gains -8..7 for R, G, B into 18 (method "adaptive"); all come back
     unchanged, and a tuned header reads as zero gains."""
     rng = np.random.default_rng(1)
-    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3), rng.integers(0, 16, 3))
-             for _ in range(50)]
-    extremes = (np.full((3, 8), -8), np.array([-128, 127, 0]), np.array([15, 0, 8]))
-    for offsets, couplings, gains in cases + [extremes]:
-        tuned, adaptive = pack(offsets, couplings), pack(offsets, couplings, gains)
+    cases = [(rng.integers(-8, 8, (3, 8)), rng.integers(-128, 128, 3), rng.integers(0, 16, 3),
+              rng.integers(-8, 8, 3)) for _ in range(50)]
+    extremes = (np.full((3, 8), -8), np.array([-128, 127, 0]), np.array([15, 0, 8]),
+                np.array([-8, 7, -1]))
+    zero = np.zeros(3)
+    for offsets, couplings, gains, biases in cases + [extremes]:
+        tuned, adaptive = pack(offsets, couplings), pack(offsets, couplings, (gains, biases))
         assert len(tuned) == HEADER_BYTES["tuned"] == 16 and tuned[-1] == 0
-        assert len(adaptive) == HEADER_BYTES["adaptive"] == 17 and adaptive[-1] >> 4 == 0
-        assert adaptive[:15] == tuned[:15]
-        for header, want in ((tuned, np.zeros(3)), (adaptive, gains)):
+        assert len(adaptive) == HEADER_BYTES["adaptive"] == 18 and adaptive[:15] == tuned[:15]
+        for header, want in ((tuned, (zero, zero)), (adaptive, (gains, biases))):
             back = unpack(header)
             assert np.array_equal(back[0], offsets) and np.array_equal(back[1], couplings)
-            assert np.array_equal(back[2], want)
+            assert np.array_equal(back[2], want[0]) and np.array_equal(back[3], want[1])
     assert pack(np.zeros((3, 8), np.int64), np.zeros(3, np.int64)) == bytes(16)
-    with pytest.raises(ValueError, match="reserved bits"):
+    with pytest.raises(ValueError, match="reserved byte"):
         unpack(bytes(15) + b"\1")
-    with pytest.raises(ValueError, match="reserved bits"):
-        unpack(bytes(16) + b"\x10")
 
 
 def test_gain_choice_is_exact_per_plane_and_prefers_zero_on_ties():

@@ -4,7 +4,7 @@ Layout (docs/FORMAT.md): a header naming the model, the payloads back to back, a
 protected by CRC32, and a fixed-size trailer that locates the index. Versions 1 and 2 hold
 fixed-width index records; version 3 packs them (variable-length numbers, offsets implied
 by the order, the whole deflated), which matters for small images with long paths; version
-4 adds the method "adaptive" (tuning with surprise gains, `rowcast.surprise`).
+4 adds the method "adaptive" (tuning with surprise gains, `rowcast.feedback`).
 """
 
 from __future__ import annotations
@@ -58,7 +58,7 @@ _MAX_INFLATION = 1032  # deflate never expands more than this: a bound on honest
 _MAX_NUMBER_BYTES = 10  # a variable-length number below 2**64
 _WORD_BYTES = 4
 # bytes ahead of the coder's words (rowcast.tuning.HEADER_BYTES: the layout is fixed here too)
-_TUNING_BYTES: dict[str, int] = {"model": 0, "tuned": 16, "adaptive": 17}
+_TUNING_BYTES: dict[str, int] = {"model": 0, "tuned": 16, "adaptive": 18}
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 
 

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rowcast import entropy, surprise, tuning
+from rowcast import entropy, feedback, tuning
 from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
@@ -38,29 +38,38 @@ class Coded:
     method: str = "model"
 
 
-def base_at(row: np.ndarray, above: np.ndarray | None, x: int) -> np.ndarray:
-    """`base_prediction` of column x only, for a batch: row and above are (B, 3, W)."""
+def base_at(row: np.ndarray, above: tuple | None, x: int) -> np.ndarray:
+    """`base_prediction` of column x only, for a batch: row is (B, 3, W), above the row
+    above's `base_terms` or None on the top row."""
     if above is None:
         return row[:, :, x - 1].astype(np.int64) if x else np.full(row.shape[:2], 128, np.int64)
-    up = above[:, :, x].astype(np.int64)
+    up, slope = above
     if x == 0:
-        return up
+        return up[x]
     left = row[:, :, x - 1].astype(np.int64)
     # the median of left, up and left + up - corner is that last value clamped to [lo, hi]
-    return np.minimum(np.maximum(left + up - above[:, :, x - 1], np.minimum(left, up)),
-                      np.maximum(left, up))
+    return np.minimum(np.maximum(left + slope[x], np.minimum(left, up[x])),
+                      np.maximum(left, up[x]))
+
+
+def base_terms(above: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(up, up - corner), each (W, B, 3) int64, of a row above (B, 3, W) for `base_at`."""
+    up = above.transpose(2, 0, 1).astype(np.int64)
+    return up, up - np.concatenate([up[:1], up[:-1]])
 
 
 @dataclass(frozen=True)
 class Tune:
     """An image's tuning (or a batch's, one per image): scale offsets (3, bands) or
-    (B, 3, bands), coupling offsets (3,) or (B, 3), surprise gains (3,) or (B, 3), and the
-    offset of every level: the channels' maps (`tuning.offset_map`) end to end in `levels`,
-    channel c's offset for level l at levels[origin[..., c] + l]."""
+    (B, 3, bands), coupling offsets (3,) or (B, 3), the feedback's scale and bias gains
+    (3,) or (B, 3) each, and the offset of every level: the channels' maps
+    (`tuning.offset_map`) end to end in `levels`, channel c's offset for level l at
+    levels[origin[..., c] + l]."""
 
     offsets: np.ndarray
     couplings: np.ndarray
     gains: np.ndarray
+    biases: np.ndarray
     levels: np.ndarray
     origin: np.ndarray
 
@@ -71,17 +80,23 @@ class Tune:
         return tuning.apply(untuned, self.levels)
 
     @classmethod
-    def of(cls, offsets: np.ndarray, couplings: np.ndarray,
-           gains: np.ndarray | None = None) -> Tune:
+    def of(cls, offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None = None,
+           biases: np.ndarray | None = None) -> Tune:
         levels = tuning.offset_map(offsets)
         starts = np.arange(levels.size, step=levels.shape[-1]).reshape(levels.shape[:-1])
         gains = np.zeros_like(couplings) if gains is None else gains
-        return cls(offsets, couplings, gains, levels.reshape(-1), starts - fam.LS_LO)
+        biases = np.zeros_like(couplings) if biases is None else biases
+        return cls(offsets, couplings, gains, biases, levels.reshape(-1), starts - fam.LS_LO)
+
+    @property
+    def feedback(self) -> bool:
+        """Whether the neighbours' feedback moves anything (method "adaptive")."""
+        return bool(self.gains.any() or self.biases.any())
 
     @property
     def method(self) -> str:
         """The coding method that carries this tuning."""
-        return "adaptive" if self.gains.any() else "tuned"
+        return "adaptive" if self.feedback else "tuned"
 
 
 @dataclass(frozen=True)
@@ -140,11 +155,12 @@ def _on_grid(mu4: np.ndarray) -> np.ndarray:
 
 
 def plane_rows(p: Params, c: int, residuals: np.ndarray,
-               levels_moved: np.ndarray | None = None) -> tuple:
+               levels_moved: np.ndarray | None = None,
+               means_moved: np.ndarray | int = 0) -> tuple:
     """(table rows of the first component, of the second or None) for plane c (N,), with
     the levels moved by `levels_moved` ((N,): each its own), or (K, N) moved by each of K
-    offsets (K, 1) or K moves (K, N)."""
-    move = coupling_move(p.couplings, c, residuals)
+    offsets (K, 1) or K moves (K, N), and the means by `means_moved` ((N,) or (K, N))."""
+    move = coupling_move(p.couplings, c, residuals) + means_moved
 
     def rows(means: np.ndarray, ls8: np.ndarray) -> np.ndarray:
         levels = ls8[:, c] if levels_moved is None else tuning.apply(ls8[:, c], levels_moved)
@@ -153,19 +169,38 @@ def plane_rows(p: Params, c: int, residuals: np.ndarray,
     return rows(p.means, p.ls8), None if p.weight is None else rows(p.means_b, p.ls8_b)
 
 
-def surprise_sums(p: Params, known: np.ndarray, residuals: np.ndarray,
-                  shape: tuple[int, int]) -> np.ndarray:
-    """S (N, P) of an image's N = H * W pixels (`surprise`), from its tuned parameters, its
-    values (N, P) and residuals (N, 3)."""
-    q = [surprise.surprises(p.ls8[:, c], _on_grid(p.means[:, c] + coupling_move(
-        p.couplings, c, residuals)), known[:, c]) for c in range(known.shape[1])]
-    return surprise.neighbour_sums(np.stack(q).reshape(-1, *shape)).reshape(len(q), -1).T
+@dataclass(frozen=True)
+class Feedback:
+    """What the neighbours' feedback (`feedback`) does to an image's N subpixels of P
+    planes, each (N, P): their errors' sums e_left + e_up, the moves of their means (for
+    the tuning's bias gains) and their surprises' sums S."""
+
+    errors: np.ndarray
+    means_moved: np.ndarray
+    sums: np.ndarray
+
+    @classmethod
+    def of(cls, p: Params, known: np.ndarray, residuals: np.ndarray, shape: tuple[int, int],
+           biases: np.ndarray) -> Feedback:
+        """From an image's tuned parameters, values (N, P), residuals (N, 3) and biases."""
+        planes = known.shape[1]
+        means = [p.means[:, c] + coupling_move(p.couplings, c, residuals) for c in range(planes)]
+        errors = np.stack([4 * known[:, c] - means[c] for c in range(planes)])
+        errors = feedback.error_sums(errors.reshape(-1, *shape)).reshape(planes, -1).T
+        moved = feedback.mean_moves(errors, biases[:planes])
+        q = [feedback.surprises(p.ls8[:, c], _on_grid(means[c] + moved[:, c]), known[:, c])
+             for c in range(planes)]
+        sums = feedback.neighbour_sums(np.stack(q).reshape(-1, *shape)).reshape(planes, -1).T
+        return cls(errors, moved, sums)
+
+    def band(self, pixels: slice) -> Feedback:
+        return Feedback(self.errors[pixels], self.means_moved[pixels], self.sums[pixels])
 
 
 def level_moves(sums: np.ndarray, c: int, gains: np.ndarray | int) -> np.ndarray:
     """How far the surprise feedback moves the levels of plane c with surprise sums `sums`
-    (`surprise.move`, before clamping)."""
-    return (gains * surprise.feedback_table(c + 2)[sums] + 8) >> 4
+    (`feedback.move`, before clamping)."""
+    return (gains * feedback.feedback_table(c + 2)[sums] + 8) >> 4
 
 
 def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
@@ -175,20 +210,25 @@ def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | No
 
 def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
                  tune: Tune | None = None,
-                 sums: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                 near: Feedback | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(symbols (N*P,), tables (N*P, 256)) in coding order for a band of image rows.
 
     out: raw outputs (h, W, outputs); rgb and base: (3, h, W) for the same rows; tune:
-    the image's tuning, or None; sums: the band's `surprise_sums` (N, P), needed when the
-    tuning has surprise gains.
+    the image's tuning, or None; near: the band's `Feedback`, needed when the tuning has
+    feedback gains.
     """
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base, tune)
     residuals = known - flat_base
-    gains = 0 if tune is None else tune.gains
-    rows = [plane_rows(p, c, residuals, level_moves(sums[:, c], c, gains[c]) if np.any(gains)
-                       else None) for c in range(planes)]  # in coding order:
+
+    def rows(c: int) -> tuple:
+        if tune is None or not tune.feedback:
+            return plane_rows(p, c, residuals)
+        return plane_rows(p, c, residuals, level_moves(near.sums[:, c], c, tune.gains[c]),
+                          near.means_moved[:, c])
+
+    rows = [rows(c) for c in range(planes)]  # in coding order:
     first = np.stack([r[0] for r in rows], axis=1).reshape(-1)  # pixel-major, then plane
     second = None if p.weight is None else np.stack([r[1] for r in rows], 1).reshape(-1)
     weight = None if p.weight is None else p.weight[:, :planes].reshape(-1)
@@ -198,7 +238,7 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
 def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
                  workers: int | None = None) -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8. `method` is the richest
-    method allowed: with "adaptive", each image gets the tuning and surprise gains that
+    method allowed: with "adaptive", each image gets the tuning and feedback gains that
     shorten it (method "adaptive", or "tuned" when every gain is zero) if that saves more
     than its header takes; "tuned" tunes without gains (format versions 2 and 3); "model"
     never tunes. Like decoding, a large batch is shared by single-threaded processes
@@ -225,8 +265,8 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str) -> list[Coded
 def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
                   method: str = "adaptive") -> Tune | None:
     """The tuning that gives this image the shortest code (scale offsets band by band, then
-    coupling offsets, then with method "adaptive" surprise gains), or None when it would not
-    save the bytes of its header."""
+    coupling offsets, then with method "adaptive" the feedback's bias gains and scale
+    gains), or None when it would not save the bytes of its header."""
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     raw = out.reshape(-1, out.shape[-1])
@@ -234,10 +274,11 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: in
     residuals = known - flat_base
     flat = all_tables().reshape(-1)
 
-    def bits(p: Params, c: int, d: np.ndarray | None = None) -> np.ndarray:
+    def bits(p: Params, c: int, d: np.ndarray | None = None,
+             m: np.ndarray | int = 0) -> np.ndarray:
         """Bits, up to a constant, of plane c's subpixels (N,), or (K, N) with the levels
-        moved by each of K offsets d (K, 1)."""
-        rows, rows_b = plane_rows(p, c, residuals, d)
+        moved by each of K offsets d (K, 1) or moves (K, N), or the means by moves m."""
+        rows, rows_b = plane_rows(p, c, residuals, d, m)
         count = flat[rows * 256 + known[:, c]]
         if rows_b is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
             w = p.weight[:, c].astype(np.float32)
@@ -260,44 +301,50 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: in
 
         couplings, more = tuning.choose_couplings(plane_bits)
         tune, saved = Tune.of(offsets, couplings), saved + more
-    if method == "adaptive":
+    if method == "adaptive":  # biases first: the surprises are measured from moved means
         tuned = pixel_params(raw, flat_base, tune)
-        sums = surprise_sums(tuned, known[:, :planes], residuals, out.shape[:2])
-        gains, more = tuning.choose_gains(
-            lambda c, k: bits(tuned, c, level_moves(sums[:, c], c, k)).sum(axis=1), planes)
-        tune, saved = Tune.of(tune.offsets, tune.couplings, gains), saved + more
+        near = Feedback.of(tuned, known[:, :planes], residuals, out.shape[:2],
+                           np.zeros(3, np.int64))
+        biases, more = tuning.choose_gains(lambda c, b: bits(tuned, c, None, feedback.mean_moves(
+            near.errors[:, c], b)).sum(axis=1), planes, feedback.BIASES)
+        near = Feedback.of(tuned, known[:, :planes], residuals, out.shape[:2], biases)
+        gains, most = tuning.choose_gains(lambda c, k: bits(
+            tuned, c, level_moves(near.sums[:, c], c, k), near.means_moved[:, c]).sum(axis=1),
+            planes)
+        tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
+        saved += more + most
     return tune if saved > 8 * tuning.HEADER_BYTES[tune.method] else None
 
 
 def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-              method: str) -> tuple[Tune | None, np.ndarray | None]:
-    """(the tuning an image is coded with, or None; its `surprise_sums` when the tuning has
-    surprise gains, else None): what `image_tables` needs for the encoder's tables."""
+              method: str) -> tuple[Tune | None, Feedback | None]:
+    """(the tuning an image is coded with, or None; its `Feedback` when the tuning has
+    feedback gains, else None): what `image_tables` needs for the encoder's tables."""
     chosen = None if method == "model" else choose_tuning(out, rgb, base, planes, method)
-    if chosen is None or not chosen.gains.any():
+    if chosen is None or not chosen.feedback:
         return chosen, None
     known = rgb.reshape(3, -1).T.astype(np.int64)
     tuned = pixel_params(out.reshape(-1, out.shape[-1]), base.reshape(3, -1).T, chosen)
-    return chosen, surprise_sums(tuned, known[:, :planes], known - base.reshape(3, -1).T,
-                                 out.shape[:2])
+    return chosen, Feedback.of(tuned, known[:, :planes], known - base.reshape(3, -1).T,
+                               out.shape[:2], chosen.biases)
 
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> Coded:
     coder, bits = entropy.encoder(), 0.0
     base = base_prediction(rgb)
-    chosen, sums = tuning_of(out, rgb, base, planes, method)
+    chosen, near = tuning_of(out, rgb, base, planes, method)
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
         pixels = slice(y * out.shape[1], (y + rows_per_chunk) * out.shape[1])
         symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, chosen,
-                                       None if sums is None else sums[pixels])
+                                       None if near is None else near.band(pixels))
         entropy.encode(coder, symbols, tables)
         total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
         bits += entropy.cross_entropy_bits(symbols, tables, total=total)
     if chosen is None:
         return Coded(entropy.finish(coder), bits)
-    gains = chosen.gains if chosen.method == "adaptive" else None
+    gains = (chosen.gains, chosen.biases) if chosen.feedback else None
     header = tuning.pack(chosen.offsets, chosen.couplings, gains)
     return Coded(header + entropy.finish(coder), bits, chosen.method)
 
@@ -338,6 +385,7 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
     offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
     couplings = np.zeros((len(payloads), 3), np.int64)
     gains = np.zeros((len(payloads), 3), np.int64)
+    biases = np.zeros((len(payloads), 3), np.int64)
     words = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
         if method in tuning.HEADER_BYTES:
@@ -345,14 +393,14 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
             if len(payload) < size:
                 raise entropy.PayloadError("payload is shorter than its tuning header")
             try:
-                offsets[i], couplings[i], gains[i] = tuning.unpack(payload[:size])
+                offsets[i], couplings[i], gains[i], biases[i] = tuning.unpack(payload[:size])
             except ValueError as exc:
                 raise entropy.PayloadError(str(exc)) from None
             payload = payload[size:]
         elif method != "model":
             raise ValueError(f"no decoder for method {method!r}")
         words.append(payload)
-    return words, Tune.of(offsets, couplings, gains)
+    return words, Tune.of(offsets, couplings, gains, biases)
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
@@ -365,7 +413,7 @@ def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: i
                                    "or another model)") from None
 
 
-SUMS = 4 * surprise.Q_MAX + 1  # sums of up to four surprises
+SUMS = 4 * feedback.Q_MAX + 1  # sums of up to four surprises
 
 
 @functools.cache
@@ -374,20 +422,20 @@ def _moved_level_rows() -> np.ndarray:
     moved for gain k, plane c and sum S, flat, at (k * 3 + c) * LEVELS * SUMS +
     (l - LS_LO) * SUMS + S."""
     levels = np.arange(fam.LS_LO, fam.LS_HI + 1)[:, None]
-    out = np.empty((len(surprise.GAINS), fam.CHANNELS, len(levels), SUMS), np.int64)
+    out = np.empty((len(feedback.GAINS), fam.CHANNELS, len(levels), SUMS), np.int64)
     for c in range(fam.CHANNELS):
-        feedback = surprise.feedback_table(c + 2)  # sums past a plane's range never occur
-        feedback = np.pad(feedback, (0, SUMS - len(feedback)), mode="edge")
-        for i, k in enumerate(surprise.GAINS):
-            out[i, c] = table_rows(0, surprise.move(levels, feedback, k))
+        f = feedback.feedback_table(c + 2)  # sums past a plane's range never occur
+        f = np.pad(f, (0, SUMS - len(f)), mode="edge")
+        for i, k in enumerate(feedback.GAINS):
+            out[i, c] = table_rows(0, feedback.move(levels, f, k))
     return out.reshape(-1).astype(np.int32)  # small, to stay in cache
 
 
 @functools.cache
 def _signed_surprises() -> np.ndarray:
-    """`surprise.surprise_table` over signed distances 4v - mu4, flat, at
+    """`feedback.surprise_table` over signed distances 4v - mu4, flat, at
     (l - LS_LO) * (2 DISTANCES - 1) + DISTANCES - 1 + 4v - mu4: the decoder's one lookup."""
-    q = surprise.surprise_table()
+    q = feedback.surprise_table()
     return np.concatenate([q[:, :0:-1], q], axis=1).reshape(-1).astype(np.int8)
 
 
@@ -403,34 +451,40 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
     decode = type(decoders[0]).decode
     tables = all_tables()
     # Each image's tuned levels, looked up per pixel by `tune.origin + level` as the parts
-    # of table indices they give: the table row's level part, or with surprise feedback
-    # the level parts of its moved-row and surprise lookups (`_moved_level_rows`,
+    # of table indices they give: the table row's level part, or with the neighbours'
+    # feedback the level parts of its moved-row and surprise lookups (`_moved_level_rows`,
     # `_signed_surprises`).
-    feedback = tune is not None and bool(tune.gains.any())
-    if tune is not None and not feedback:
+    active = tune is not None and tune.feedback
+    if tune is not None and not active:
         row_map = table_rows(0, tune.tuned)
-    if feedback:  # surprises of the row above and of the current row, (W, 3, B)
-        q_above = np.full((width, fam.CHANNELS, batch), surprise.NEUTRAL, np.int64)
+    if active:  # errors and surprises of the row above and of the current row, (W, 3, B)
+        q_above = np.full((width, fam.CHANNELS, batch), feedback.NEUTRAL, np.int64)
         q_row = q_above.copy()  # planes a gray image lacks stay neutral
+        e_above = np.zeros((width, fam.CHANNELS, batch), np.int64)
+        e_row = e_above.copy()
         moved, signed = _moved_level_rows(), _signed_surprises()
-        gains = tune.gains.T  # (3, B)
+        gains, biases = tune.gains.T, tune.biases.T  # (3, B)
         lead_map = (tune.gains * fam.CHANNELS + np.arange(3)) * LEVELS * SUMS
         lead_map = (tune.tuned - fam.LS_LO) * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
-        q_map = (tune.tuned - fam.LS_LO) * (2 * surprise.DISTANCES - 1) + surprise.DISTANCES - 1
+        q_map = (tune.tuned - fam.LS_LO) * (2 * feedback.DISTANCES - 1) + feedback.DISTANCES - 1
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
+        terms = None if above is None else base_terms(above)
         row = img[:, :, y]
         for x in range(width):
-            base = base_at(row, above, x)
+            base = base_at(row, terms, x)
             p = pixel_params(engine.pixel(acc_rows, row, x), base, tune, tune_levels=False)
             if tune is None:  # a table's row is its level's row + its mean
                 level_rows = table_rows(0, p.ls8)
             else:
                 at = tune.origin + p.ls8
-                if feedback:  # and the neighbours' surprises
-                    lead, q_lead = lead_map.take(at), q_map.take(at)
-                    near = q_above[x] + (q_row[x - 1] if x else surprise.NEUTRAL)  # (3, B)
+                if active:  # and what the neighbours say: (3, B) each
+                    near = q_above[x] + (q_row[x - 1] if x else feedback.NEUTRAL)
+                    lead, q_lead = lead_map.take(at.T), q_map.take(at.T)
+                    lead += near
+                    shift = feedback.mean_moves(e_above[x] + e_row[x - 1] if x else e_above[x],
+                                                biases)
                 else:
                     level_rows = row_map.take(at)
             if p.weight is not None:
@@ -440,21 +494,24 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
             earlier = None  # the surprises of this pixel's planes so far, summed
             for c in range(planes):
                 move = coupling_move(p.couplings, c, residuals)
-                mean = _on_grid(p.means[:, c] + move)
-                if feedback:
-                    sums = near[c] if c == 0 else near[c] + earlier
-                    rows = moved.take(lead[:, c] + sums) + mean
+                if active:
+                    ahead = p.means[:, c] + move  # the mean the errors are measured from
+                    mean = _on_grid(ahead + shift[c])
+                    rows = moved.take(lead[c] if c == 0 else lead[c] + earlier) + mean
                 else:
+                    mean = _on_grid(p.means[:, c] + move)
                     rows = level_rows[:, c] + mean
                 if p.weight is None:
                     if trace is not None:
                         trace(y, x, c, tables[rows])
                     found = map(models.__getitem__, rows.tolist())
                 else:
-                    if feedback:
+                    if active:
+                        sums = near[c] if c == 0 else near[c] + earlier
                         levels_b = tuning.apply(ls8_b[:, c], level_moves(sums, c, gains[c]))
                         level_rows_b[:, c] = table_rows(0, levels_b)
-                    rows_b = level_rows_b[:, c] + _on_grid(p.means_b[:, c] + move)
+                    moved_b = p.means_b[:, c] + move + (shift[c] if active else 0)
+                    rows_b = level_rows_b[:, c] + _on_grid(moved_b)
                     mixed = mixture_tables(rows, rows_b, p.weight[:, c])
                     if trace is not None:
                         trace(y, x, c, mixed)
@@ -462,9 +519,10 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
                 values = np.fromiter(map(decode, decoders, found), np.int64, batch)
                 row[:, c, x] = values
                 residuals[:, c] = values - base[:, c]
-                if feedback:
+                if active:
                     values *= 4
-                    values += q_lead[:, c] - mean
+                    e_row[x, c] = values - ahead
+                    values += q_lead[c] - mean
                     q_row[x, c] = q = signed.take(values)
                     if c + 1 < planes:
                         earlier = q if c == 0 else earlier + q
@@ -472,8 +530,9 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
                 row[:, 1:, x] = row[:, :1, x]
                 residuals[:, 1:] = residuals[:, :1]
             misses += np.abs(residuals)
-        if feedback:
+        if active:
             q_above, q_row = q_row, q_above
+            e_above, e_row = e_row, e_above
         progress(batch)
     return img[:, :planes]
 

@@ -4,13 +4,13 @@ A network trained on many images is calibrated on average, not on each one: on a
 star field it is too sure, on a smooth sky too unsure, and how strongly G follows R varies
 from scene to scene. The encoder therefore picks, for each channel and each band of
 log-scale levels, a small offset to every level in that band, and an offset to each of the
-three channel couplings, and (method "adaptive", format 4) each channel's surprise gain
-(`surprise`), that give the shortest code, and stores them in 16 or 17 bytes ahead of the
-coder's words. The decoder applies them with a few lookups and additions per pixel;
-nothing else changes. Measured on the bundled model: the scale offsets -2.4% bits on the
-corpus validation tiles and -1.5% on the held-out thumbnails; the coupling offsets a further
--1.2% and -0.85% (offline check, side information included); the surprise gains a further
--0.57% and -1.33%.
+three channel couplings, and (method "adaptive", format 4) each channel's bias and scale
+gains for the neighbours' feedback (`feedback`), that give the shortest code, and stores
+them in 16 or 18 bytes ahead of the coder's words. The decoder applies them with a few
+lookups and additions per pixel; nothing else changes. Measured on the bundled model: the
+scale offsets -2.4% bits on the corpus validation tiles and -1.5% on the held-out
+thumbnails; the coupling offsets a further -1.2% and -0.85%; the feedback gains a further
+-1.8% and -1.7% (offline checks, side information included).
 """
 
 from __future__ import annotations
@@ -18,14 +18,14 @@ from __future__ import annotations
 import numpy as np
 
 from rowcast import family as fam
-from rowcast.surprise import GAINS
+from rowcast.feedback import GAINS
 
 BANDS = np.array([-8, 0, 4, 8, 12, 16, 24])  # band k holds levels l with BANDS[k-1] <= l < BANDS[k]
 OFFSETS = np.arange(-8, 8)  # each offset is one signed 4-bit nibble
 SCALE_BYTES = fam.CHANNELS * (len(BANDS) + 1) // 2  # 3 channels x 8 bands x 4 bits
 COUPLING_OFFSETS = np.arange(-32, 33, 4)  # tried for each coupling, in its 64ths
-# then G<-R, B<-R, B<-G as signed bytes, and a zero byte ("tuned") or the surprise gains
-HEADER_BYTES = {"tuned": SCALE_BYTES + 4, "adaptive": SCALE_BYTES + 5}
+# then G<-R, B<-R, B<-G as signed bytes, and a zero byte ("tuned") or the feedback gains
+HEADER_BYTES = {"tuned": SCALE_BYTES + 4, "adaptive": SCALE_BYTES + 6}
 
 
 def band_of(levels: np.ndarray) -> np.ndarray:
@@ -67,26 +67,29 @@ def _signed_nibbles(raw: bytes) -> np.ndarray:
     return np.where(nibbles >= 8, nibbles - 16, nibbles)
 
 
-def pack(offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None = None) -> bytes:
+def pack(offsets: np.ndarray, couplings: np.ndarray,
+         gains: tuple[np.ndarray, np.ndarray] | None = None) -> bytes:
     """The header of method "tuned" (16 bytes: scale offsets (3, 8) as nibbles,
     channel-major, low nibble first; the coupling offsets (3,) as signed bytes; a zero
-    byte), or with surprise gains (3,) of method "adaptive" (17 bytes: the same 15, then
-    the gains 0..15 as nibbles R, G, B and a zero nibble)."""
+    byte), or with feedback gains (scale gains (3,), bias gains (3,)) of method "adaptive"
+    (18 bytes: the same 15, then the scale gains 0..15 and the bias gains -8..7 as nibbles,
+    R, G, B each)."""
     head = _nibbles(offsets.reshape(-1)) + couplings.astype(np.int8).tobytes()
-    return head + (b"\0" if gains is None else _nibbles(gains))
+    return head + (b"\0" if gains is None else _nibbles(np.concatenate(gains)))
 
 
-def unpack(header: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(scale offsets (3, 8), coupling offsets (3,), surprise gains (3,)) from a header
-    that `pack` wrote (gains zero in a 16-byte one); ValueError if its last nibble (16
-    bytes: byte) is not zero."""
-    if header[-1] & (0xFF if len(header) == HEADER_BYTES["tuned"] else 0xF0):
-        raise ValueError("tuning header's reserved bits are not zero")
+def unpack(header: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(scale offsets (3, 8), coupling offsets (3,), scale gains (3,), bias gains (3,))
+    from a header that `pack` wrote (gains zero in a 16-byte one); ValueError if a 16-byte
+    header's last byte is not zero."""
+    if len(header) == HEADER_BYTES["tuned"] and header[-1]:
+        raise ValueError("tuning header's reserved byte is not zero")
     offsets = _signed_nibbles(header[:SCALE_BYTES]).reshape(fam.CHANNELS, -1)
     couplings = np.frombuffer(header[SCALE_BYTES : SCALE_BYTES + 3], np.int8).astype(np.int64)
     tail = header[SCALE_BYTES + 3 :]
-    gains = np.zeros(3, np.int64) if len(tail) == 1 else _unsigned_nibbles(tail)[:3]
-    return offsets, couplings, gains
+    if len(tail) == 1:
+        return offsets, couplings, np.zeros(3, np.int64), np.zeros(3, np.int64)
+    return offsets, couplings, _unsigned_nibbles(tail)[:3], _signed_nibbles(tail)[3:]
 
 
 def choose(cost, levels: np.ndarray) -> tuple[np.ndarray, float]:
@@ -129,12 +132,13 @@ def choose_couplings(cost) -> tuple[np.ndarray, float]:
     return offsets, before[0] + before[1] - after[0] - after[1]
 
 
-def choose_gains(cost, planes: int) -> tuple[np.ndarray, float]:
-    """(surprise gains (3,), bits saved by them): for each coded plane c, the gain of GAINS
-    that minimises cost(c, gains) (bits (K,) for K candidate gains (K, 1)). A plane's gain
-    moves only its own levels, so the choice is exact; ties go to the gain nearest zero."""
+def choose_gains(cost, planes: int, candidates: np.ndarray = GAINS) -> tuple[np.ndarray, float]:
+    """(feedback gains (3,), bits saved by them): for each coded plane c, the gain of
+    `candidates` (the scale gains, or BIASES) that minimises cost(c, gains) (bits (K,) for
+    K candidate gains (K, 1)). A plane's gain moves only its own levels (or means), so the
+    choice is exact; ties go to the gain nearest zero."""
     gains = np.zeros(3, np.int64)
-    candidates = GAINS[:, None]  # zero first: ties keep the smaller gain
+    candidates = candidates[np.argsort(np.abs(candidates), kind="stable")][:, None]
     saved = 0.0
     for c in range(planes):
         bits = cost(c, candidates)

@@ -1,21 +1,26 @@
-"""Surprise feedback: how far the neighbours fell from their predictions moves the next scale.
+"""Feedback from the decoded neighbours: how far they fell from their predictions moves the
+next subpixel's mean and scale, with per-image gains chosen by the encoder.
 
-A network trained on many images predicts a typical spread; within one image, misses come
-in patches (grain on a textured wall, sensor noise in the shadows, a burst of detail), and
-a pixel's channels miss together. So every coded subpixel leaves its *surprise*: the
-distance of its value v from its mean, in quarters of its scale,
-q = min(63, floor(|4v - mu4| exp(-l/8) + 1/2)), with mu4 the final mean (quarter pixels) and
-l the tuned level (eighths of a natural log). Before channel c of a pixel is coded, S is
-the sum of the surprises of the same channel at the left and at the upper pixel and of the
-channels already coded in this pixel (n = c + 2 terms; a neighbour outside the image
-counts as NEUTRAL, a miss of one scale), and
-F = floor(8 (log2(1 + S / 4n) - 1) + 1/2), which is 0 when the neighbours missed by one
-scale on average. The level moves by floor((k F + 8) / 16), with k (0..15) the image's
-gain for that channel, chosen by the encoder: the scale widens after surprises and narrows
-after hits, the more so the larger k.
+A network trained on many images is right on average; within one image its misses come in
+patches (grain on a textured wall, sensor noise in the shadows, an edge it keeps under- or
+over-shooting), and a pixel's channels miss together. Two integer signals carry this:
 
-Both tables are integers computed with Python's decimal arithmetic, which is correctly
-rounded and the same everywhere; at run time everything is integer numpy.
+* the *error* of a coded subpixel, e = 4v - m (quarter pixels), with v its value and m its
+  mean after the channel couplings and before any clamp or feedback. A subpixel's mean
+  moves by floor((b (e_left + e_up) + 16) / 32), the same plane's errors at the left and
+  upper pixels (0 outside the image), for the image's bias gain b of that plane (-8..7);
+* the *surprise* q = min(63, floor(|4v - mu4| exp(-l/8) + 1/2)): the distance of the value
+  from its final mean mu4 in quarters of its scale, l being the tuned level before this
+  feedback. Before channel c of a pixel is coded, S is the sum of the surprises of the same
+  channel at the left and at the upper pixel and of the channels already coded in this
+  pixel (n = c + 2 terms; a neighbour outside the image counts as NEUTRAL, a miss of one
+  scale), and F = floor(8 (log2(1 + S / 4n) - 1) + 1/2), which is 0 when the neighbours
+  missed by one scale on average. The level moves by floor((k F + 8) / 16) for the image's
+  scale gain k of that channel (0..15): the scale widens after surprises and narrows after
+  hits, the more so the larger k.
+
+The surprise tables are integers computed with Python's decimal arithmetic, which is
+correctly rounded and the same everywhere; at run time everything is integer numpy.
 """
 
 from __future__ import annotations
@@ -29,7 +34,8 @@ from rowcast import family as fam
 
 Q_MAX = 63  # surprises saturate at 63 quarter scales (about 16 scales)
 NEUTRAL = 4  # the surprise of a neighbour outside the image: one scale
-GAINS = np.arange(16)  # a channel's gain is one 4-bit nibble (negative ones were no use)
+GAINS = np.arange(16)  # a scale gain is one 4-bit nibble (negative ones were no use)
+BIASES = np.arange(-8, 8)  # a bias gain is one signed 4-bit nibble
 DISTANCES = fam.MU_HI + 1  # |4v - mu4| <= max(4 * 255 - MU_LO, MU_HI) = MU_HI
 _CTX = decimal.Context(prec=40)
 
@@ -74,6 +80,18 @@ def neighbour_sums(q: np.ndarray) -> np.ndarray:
     padded = np.pad(q, ((0, 0), (1, 0), (1, 0)), constant_values=NEUTRAL)
     earlier = np.cumsum(q, axis=0) - q
     return padded[:, :-1, 1:] + padded[:, 1:, :-1] + earlier
+
+
+def error_sums(e: np.ndarray) -> np.ndarray:
+    """e_left + e_up of every subpixel of an image from the errors e (P, H, W) of its planes,
+    0 outside the image."""
+    padded = np.pad(e, ((0, 0), (1, 0), (1, 0)))
+    return padded[:, :-1, 1:] + padded[:, 1:, :-1]
+
+
+def mean_moves(sums: np.ndarray, biases: np.ndarray | int) -> np.ndarray:
+    """How far the error feedback moves means: floor((b (e_left + e_up) + 16) / 32)."""
+    return (biases * sums + 16) >> 5
 
 
 def move(levels: np.ndarray, feedback: np.ndarray, gains: np.ndarray | int) -> np.ndarray:

@@ -1,17 +1,20 @@
-"""Specification of the surprise feedback: its integer tables follow their definitions
+"""Specification of the neighbours' feedback: the surprise tables follow their definitions
 (checked against Python's decimal arithmetic and against float formulas), neighbours count
-as documented, and moves stay on the family's grid."""
+as documented, mean moves round down, and level moves stay on the family's grid."""
 
 import decimal
 
 import numpy as np
 
 from rowcast import family as fam
-from rowcast.surprise import (
+from rowcast.feedback import (
+    BIASES,
     DISTANCES,
     NEUTRAL,
     Q_MAX,
+    error_sums,
     feedback_table,
+    mean_moves,
     move,
     neighbour_sums,
     surprise_table,
@@ -86,3 +89,26 @@ def test_moves_widen_after_surprises_narrow_after_hits_and_stay_on_the_grid():
     assert move(levels, np.zeros(4, np.int64), 15).tolist() == levels.tolist()
     assert surprises(np.array([0, 8]), np.array([400, 400]), np.array([101, 110])).tolist() == [
         4, min(Q_MAX, int(np.floor(40 * np.exp(-1) + 0.5)))]
+
+
+def test_a_subpixels_error_sum_is_its_left_and_upper_neighbours_errors():
+    """Against a plain loop: the same plane's errors at the left and upper pixels, 0 outside
+    the image; the planes of the pixel itself do not count."""
+    rng = np.random.default_rng(4)
+    e = rng.integers(-1000, 1000, (3, 4, 5))
+    sums = error_sums(e)
+    for c in range(3):
+        for y in range(4):
+            for x in range(5):
+                want = (e[c, y, x - 1] if x else 0) + (e[c, y - 1, x] if y else 0)
+                assert sums[c, y, x] == want
+
+
+def test_mean_moves_are_the_floor_of_gain_times_errors_over_32():
+    """floor((b S + 16) / 32) for every bias gain over a range of signed sums, by Python's
+    integer floor division; a zero gain moves nothing."""
+    sums = np.arange(-300, 301)
+    for b in BIASES:
+        assert mean_moves(sums, b).tolist() == [(int(b) * int(s) + 16) // 32 for s in sums]
+    assert not mean_moves(sums, 0).any()
+    assert BIASES.tolist() == list(range(-8, 8))
