@@ -235,7 +235,7 @@ def render(r: dict) -> str:
         "|---|---|---|",
         "| model cross-entropy (the floor), bpsp | "
         f"{ours['RGB']['cross_entropy_bpsp']:.4f} | {ours['L']['cross_entropy_bpsp']:.4f} |",
-        f"| payloads only (with 16-byte tuning headers), bpsp | "
+        f"| payloads only (with their 16- or 18-byte tuning headers), bpsp | "
         f"{ours['RGB']['payload_bpsp']:.4f} | "
         f"{ours['L']['payload_bpsp']:.4f} |",
         "| payload / cross-entropy | "

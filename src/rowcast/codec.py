@@ -194,6 +194,7 @@ class Feedback:
         return cls(errors, moved, sums)
 
     def band(self, pixels: slice) -> Feedback:
+        """The feedback of some of the pixels (a band of rows)."""
         return Feedback(self.errors[pixels], self.means_moved[pixels], self.sums[pixels])
 
 
@@ -301,18 +302,24 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: in
 
         couplings, more = tuning.choose_couplings(plane_bits)
         tune, saved = Tune.of(offsets, couplings), saved + more
-    if method == "adaptive":  # biases first: the surprises are measured from moved means
+    if method == "adaptive":  # bias gains first: surprises are measured from moved means
         tuned = pixel_params(raw, flat_base, tune)
-        near = Feedback.of(tuned, known[:, :planes], residuals, out.shape[:2],
-                           np.zeros(3, np.int64))
-        biases, more = tuning.choose_gains(lambda c, b: bits(tuned, c, None, feedback.mean_moves(
-            near.errors[:, c], b)).sum(axis=1), planes, feedback.BIASES)
-        near = Feedback.of(tuned, known[:, :planes], residuals, out.shape[:2], biases)
-        gains, most = tuning.choose_gains(lambda c, k: bits(
-            tuned, c, level_moves(near.sums[:, c], c, k), near.means_moved[:, c]).sum(axis=1),
-            planes)
+        shape, values = out.shape[:2], known[:, :planes]
+        errors = Feedback.of(tuned, values, residuals, shape, np.zeros(3, np.int64)).errors
+
+        def bias_bits(c: int, b: np.ndarray) -> np.ndarray:
+            return bits(tuned, c, None, feedback.mean_moves(errors[:, c], b)).sum(axis=1)
+
+        biases, by_means = tuning.choose_gains(bias_bits, planes, feedback.BIASES)
+        near = Feedback.of(tuned, values, residuals, shape, biases)
+
+        def scale_bits(c: int, k: np.ndarray) -> np.ndarray:
+            moves = level_moves(near.sums[:, c], c, k)
+            return bits(tuned, c, moves, near.means_moved[:, c]).sum(axis=1)
+
+        gains, by_scales = tuning.choose_gains(scale_bits, planes)
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
-        saved += more + most
+        saved += by_means + by_scales
     return tune if saved > 8 * tuning.HEADER_BYTES[tune.method] else None
 
 
