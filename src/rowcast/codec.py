@@ -263,11 +263,14 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str) -> list[Coded
     return coded
 
 
-def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-                  method: str = "adaptive") -> Tune | None:
-    """The tuning that gives this image the shortest code (scale offsets band by band, then
-    coupling offsets, then with method "adaptive" the feedback's bias gains and scale
-    gains), or None when it would not save the bytes of its header."""
+def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
+              method: str = "adaptive") -> tuple[Tune | None, Feedback | None]:
+    """(the tuning that gives this image the shortest code, or None when it would not save
+    the bytes of its header; its `Feedback` when it has feedback gains, else None): what
+    `image_tables` needs for the encoder's tables. The search: scale offsets band by band,
+    then coupling offsets, then with method "adaptive" the bias gains and the scale gains."""
+    if method == "model":
+        return None, None
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     raw = out.reshape(-1, out.shape[-1])
@@ -288,7 +291,7 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: in
         return -np.log2(count)
 
     offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes])
-    tune = Tune.of(offsets, np.zeros(3, np.int64))
+    tune, near = Tune.of(offsets, np.zeros(3, np.int64)), None
     if planes == 3:
         tuned = pixel_params(raw, flat_base, tune)
         trial = Params(tuned.means, tuned.ls8, tuned.couplings.copy(), tuned.means_b,
@@ -320,20 +323,9 @@ def choose_tuning(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: in
         gains, by_scales = tuning.choose_gains(scale_bits, planes)
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
         saved += by_means + by_scales
-    return tune if saved > 8 * tuning.HEADER_BYTES[tune.method] else None
-
-
-def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-              method: str) -> tuple[Tune | None, Feedback | None]:
-    """(the tuning an image is coded with, or None; its `Feedback` when the tuning has
-    feedback gains, else None): what `image_tables` needs for the encoder's tables."""
-    chosen = None if method == "model" else choose_tuning(out, rgb, base, planes, method)
-    if chosen is None or not chosen.feedback:
-        return chosen, None
-    known = rgb.reshape(3, -1).T.astype(np.int64)
-    tuned = pixel_params(out.reshape(-1, out.shape[-1]), base.reshape(3, -1).T, chosen)
-    return chosen, Feedback.of(tuned, known[:, :planes], known - base.reshape(3, -1).T,
-                               out.shape[:2], chosen.biases)
+    if saved <= 8 * tuning.HEADER_BYTES[tune.method]:
+        return None, None
+    return tune, near if tune.feedback else None
 
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> Coded:
