@@ -18,6 +18,7 @@ from rowcast.train import (
     export_checkpoint,
     grow,
     load_checkpoint,
+    load_pools,
     main,
     sensor_frame,
     train,
@@ -167,3 +168,17 @@ def test_training_continues_from_the_bundled_model_on_a_users_images(tmp_path):
     assert np.array_equal(decoded[0], image)
     with pytest.raises(SystemExit, match="nowhere: cannot read model file"):
         main(str(data), str(tmp_path / "x"), minutes=0.01, resume=str(tmp_path / "nowhere"))
+
+
+def test_thumbnail_sized_images_train_at_their_own_size(tmp_path):
+    """A user's 64-px camera thumbnails give crops at 1x (a photograph is only reduced, as
+    thumbnails of it would be made), so a directory of thumbnails is enough to train on;
+    the corpus's large photographs are unaffected (checked on a 300-px one)."""
+    data = tmp_path / "thumbs"
+    data.mkdir()
+    Image.fromarray(smooth_image(1, 64)).save(data / "cam.png")
+    Image.fromarray(smooth_image(2, 300)).save(data / "big.png")
+    photos, _, _ = load_pools(Config(data=str(data), out=str(tmp_path / "run"), validation=()))
+    sizes = sorted(p.shape[0] for p in photos)
+    assert 64 in sizes and 32 in sizes  # the thumbnail at 1x and 2x
+    assert 300 not in sizes and 150 in sizes  # the photograph only reduced

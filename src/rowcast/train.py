@@ -24,6 +24,7 @@ from rowcast import family as fam
 from rowcast.network import Predictor, QConv, log2_likelihood, parameters_from_output
 
 PHOTO_SCALES = (2, 3, 4, 6, 8, 12, 16)
+THUMBNAIL = 256  # images this small on their short side are trained on at their own size
 CUTOUT_SCALES = (1, 2, 3)
 VALIDATION = ("volna.png", "animals-mammals-cats-lion-2.png", "food-fruit-kiwi.png",
               "plants-lavender.png", "vehicles-garbagetruck.png", "animals-birds-pelican.png",
@@ -77,7 +78,11 @@ def _composite(rgba: np.ndarray, background: np.ndarray) -> np.ndarray:
 
 
 def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.ndarray]:
-    """Box-filtered reductions of an image, as thumbnails of it would be made."""
+    """Box-filtered reductions of an image, as thumbnails of it would be made; an image
+    that is a thumbnail already (THUMBNAIL px or less on its short side, as a user's own
+    camera images may be) is also used as it is."""
+    if min(img.size) <= THUMBNAIL and 1 not in scales:
+        scales = (1, *scales)
     out = []
     for s in scales:
         small = img.reduce(s) if s > 1 else img
