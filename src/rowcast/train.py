@@ -428,7 +428,12 @@ def main(
           log=lambda s: print(s, flush=True))
     if export:
         summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
-        print(f"{export}: model {Path(export).stem}, {json.dumps(summary)}", flush=True)
+        from rowcast.quantize import load_model
+
+        figure = summary.get("val_integer_bpsp")
+        print(f"{export}: model {Path(export).stem} ({load_model(Path(export)).sha256.hex()[:16]}"
+              f"), {summary['steps']} steps in {summary['minutes']} min, validation "
+              + ("none" if figure is None else f"{figure} bits per subpixel"), flush=True)
 
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
@@ -460,7 +465,8 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
     _, _, held = load_pools(cfg)
     history = meta["state"]["history"]
     summary = {
-        "data": f"{cfg.data}: photographs box-reduced {PHOTO_SCALES}x; cutouts/ at "
+        "data": f"{cfg.data}: photographs box-reduced {PHOTO_SCALES}x (thumbnail-sized ones "
+                f"also at 1x); cutouts/ at "
                 f"{CUTOUT_SCALES}x for {cfg.cutout_fraction:.0%} of the crops (mostly object, "
                 f"over photo crops); flips/rotations, {cfg.dark_fraction:.0%} under-exposed, "
                 f"{cfg.sensor_fraction:.0%} of the rest faint noisy sensor frames, "
