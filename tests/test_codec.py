@@ -11,12 +11,16 @@ from hypothesis import strategies as st
 from PIL import Image
 
 import rowcast
+from rowcast import entropy, tuning
 from rowcast import family as fam
 from rowcast.codec import (
+    Feedback,
+    Tune,
     base_prediction,
     decode_batch,
     encode_batch,
     image_tables,
+    pixel_params,
     tuning_of,
 )
 from rowcast.entropy import PayloadError
@@ -308,3 +312,38 @@ def test_a_damaged_payload_is_a_payload_error_in_any_process(default_engine, rgb
     with pytest.raises(PayloadError, match="not what its model codes"):
         decode_batch(default_engine, payloads, 3, 64, 64, workers=workers,
                      methods=[c.method for c in coded])
+
+
+def forced_adaptive(engine, image, gains, biases):
+    """An adaptive payload with the given gains and zero offsets, whether or not they pay."""
+    planes = image.shape[0]
+    rgb = as_rgb(image)
+    out = engine.parallel(rgb[None])[0]
+    base = base_prediction(rgb)
+    tune = Tune.of(np.zeros((3, 8), np.int64), np.zeros(3, np.int64), gains, biases)
+    known = rgb.reshape(3, -1).T.astype(np.int64)
+    p = pixel_params(out.reshape(-1, out.shape[-1]), base.reshape(3, -1).T, tune)
+    near = Feedback.of(p, known[:, :planes], known - base.reshape(3, -1).T, out.shape[:2],
+                       biases)
+    coder = entropy.encoder()
+    entropy.encode(coder, *image_tables(out, rgb, base, planes, tune, near))
+    return tuning.pack(tune.offsets, tune.couplings, (gains, biases)) + entropy.finish(coder)
+
+
+@pytest.mark.parametrize("planes", [1, 3])
+@pytest.mark.parametrize("shape", EDGE_SHAPES)
+def test_any_feedback_gains_decode_exactly_at_edge_sizes(tiny_engine, planes, shape):
+    """Whatever gains a header carries (the extremes included) and whatever the shape
+    (single rows and columns, where neighbours fall outside the image), the decoder's
+    incremental feedback gives back the image that the encoder's whole-image feedback
+    coded; a batch of different gains decodes together."""
+    rng = np.random.default_rng(shape[0] * 7 + shape[1])
+    images = [rng.integers(0, 256, (planes, *shape), dtype=np.uint8) // 4 * 4 + 60
+              for _ in range(3)]
+    settings_ = [(np.array([15, 0, 15]), np.array([-8, 7, 0])),
+                 (np.array([0, 15, 3]), np.array([7, -8, -1])),
+                 (rng.integers(0, 16, 3), rng.integers(-8, 8, 3))]
+    payloads = [forced_adaptive(tiny_engine, im, g, b)
+                for im, (g, b) in zip(images, settings_, strict=True)]
+    decoded = decode_batch(tiny_engine, payloads, planes, *shape, methods="adaptive")
+    assert np.array_equal(decoded, np.stack(images))
