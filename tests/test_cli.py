@@ -825,6 +825,20 @@ def test_api_round_trip_and_verify(made: Made, tmp_path: Path) -> None:
     assert (check.ok, check.checked, check.problems) == (True, 5, [])
 
 
+def test_compress_writes_an_older_format_for_older_readers_from_the_command_line(
+    made: Made, tmp_path: Path
+) -> None:
+    """--format-version 3 writes what rowcast 0.3 reads (no adaptive entries); a version no
+    reader knows is a usage error that writes nothing."""
+    dest = tmp_path / "old.rca"
+    result = run("compress", made.photos, "-o", dest, "--model", TINY, "--format-version", "3")
+    assert result.exit_code == 0 and dest.read_bytes()[8:10] == bytes([3, 0])
+    assert {e.method for e in rowcast.read_index(dest)[1]} <= VERSION_METHODS[3]
+    error_line(run("compress", made.photos, "-o", tmp_path / "no.rca", "--format-version", "9"),
+               2, tmp_path / "no.rca")
+    assert not (tmp_path / "no.rca").exists()
+
+
 def test_api_compress_writes_an_older_format_version_for_older_readers(
     made: Made, tmp_path: Path
 ) -> None:

@@ -17,7 +17,7 @@ import typer
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-from rowcast import api
+from rowcast import api, archive
 from rowcast.errors import RowcastError, UsageError
 from rowcast.planes import PLANES
 
@@ -84,12 +84,16 @@ def compress(
     quiet: QuietOpt = False,
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
+    format_version: Annotated[int, typer.Option(
+        "--format-version", help="Archive format to write: 4, or 3, 2, 1 so that rowcast "
+        "0.3, 0.2, 0.1 can read it (less tuning, larger archives).")] = archive.VERSION,
 ) -> None:
     """Compress images into one archive."""
     with _guard(threads):
         total = len(api.collect_inputs(inputs))
         with _bar("compressing", total, quiet or as_json) as tick:
-            summary = api.compress(inputs, output, model=model, force=force, progress=tick)
+            summary = api.compress(inputs, output, model=model, force=force, progress=tick,
+                                   version=format_version)
         if as_json:
             out.print(json.dumps({"archive": str(summary.archive), "bytes": summary.archive_bytes,
                                   "bits_per_subpixel": summary.bits_per_subpixel,
