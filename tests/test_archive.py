@@ -365,6 +365,15 @@ def test_unknown_version_is_refused_by_number(tmp_path: Path) -> None:
         read_payload(dest, IndexEntry("x", "L", 1, 1, "stored", bytes(32), 60, 1))
 
 
+def claim_version(path: Path, version: int) -> None:
+    """Rewrite an archive's format version, with a header CRC that matches it."""
+    data = bytearray(path.read_bytes())
+    data[8:10] = struct.pack("<H", version)
+    end = 45 + len(MODEL.name.encode())
+    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
+    path.write_bytes(bytes(data))
+
+
 def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -> None:
     """Writers may still write version 1 (what rowcast 0.1 reads) when no entry is tuned;
     a tuned entry needs version 2, and a version-1 file that claims one is refused."""
@@ -380,11 +389,7 @@ def test_version_1_archives_hold_only_the_methods_of_version_1(tmp_path: Path) -
     write_archive(new, MODEL, [tuned], version=2)
     assert struct.unpack("<H", new.read_bytes()[8:10]) == (2,)
     assert read_index(new)[1][0].method == "tuned"
-    data = bytearray(new.read_bytes())
-    data[8:10] = struct.pack("<H", 1)
-    end = 45 + len(MODEL.name.encode())
-    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
-    new.write_bytes(bytes(data))
+    claim_version(new, 1)
     with pytest.raises(ArchiveError, match="'tuned' is not defined in format version 1"):
         read_index(new)
 
@@ -401,11 +406,7 @@ def test_adaptive_entries_need_version_4_and_an_18_byte_header(tmp_path: Path) -
     write_archive(new, MODEL, [adaptive])
     assert read_index(new)[1][0].method == "adaptive"
     assert read_payload(new, read_index(new)[1][0]) == adaptive.payload
-    data = bytearray(new.read_bytes())
-    data[8:10] = struct.pack("<H", 3)
-    end = 45 + len(MODEL.name.encode())
-    data[end : end + 4] = struct.pack("<I", zlib.crc32(bytes(data[:end])))
-    new.write_bytes(bytes(data))
+    claim_version(new, 3)
     with pytest.raises(ArchiveError, match="'adaptive' is not defined in format version 3"):
         read_index(new)
 
