@@ -112,7 +112,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
              version: int = archive.VERSION) -> Summary:
     """Compress image files and directories into one archive at `dest` (atomic).
 
-    With `tune` (the default) each image may carry its own tuning (`tuning`) and surprise
+    With `tune` (the default) each image may carry its own tuning (`tuning`) and feedback
     gains (`feedback`). `version` is the format version to write: the newest unless readers
     of an older rowcast need 3 (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1
     (rowcast 0.1; it has no tuning, so none is done).

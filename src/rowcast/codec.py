@@ -29,7 +29,7 @@ PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (en
 
 @dataclass(frozen=True)
 class Coded:
-    """One image's payload, its method ("adaptive" or "tuned": 17 or 16 bytes of tuning,
+    """One image's payload, its method ("adaptive" or "tuned": 18 or 16 bytes of tuning,
     then the coder's words; "model": the words alone) and the model's cross-entropy for it,
     in bits."""
 
@@ -200,8 +200,8 @@ class Feedback:
 
 def level_moves(sums: np.ndarray, c: int, gains: np.ndarray | int) -> np.ndarray:
     """How far the surprise feedback moves the levels of plane c with surprise sums `sums`
-    (`feedback.move`, before clamping)."""
-    return (gains * feedback.feedback_table(c + 2)[sums] + 8) >> 4
+    (`feedback.level_moves`, before clamping)."""
+    return feedback.level_moves(feedback.feedback_table(c + 2)[sums], gains)
 
 
 def _tables(rows: np.ndarray, rows_b: np.ndarray | None, weight: np.ndarray | None):
@@ -464,8 +464,9 @@ def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, plane
         moved, signed = _moved_level_rows(), _signed_surprises()
         gains, biases = tune.gains.T, tune.biases.T  # (3, B)
         lead_map = (tune.gains * fam.CHANNELS + np.arange(3)) * LEVELS * SUMS
-        lead_map = (tune.tuned - fam.LS_LO) * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
-        q_map = (tune.tuned - fam.LS_LO) * (2 * feedback.DISTANCES - 1) + feedback.DISTANCES - 1
+        level_index = tune.tuned - fam.LS_LO
+        lead_map = level_index * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
+        q_map = level_index * (2 * feedback.DISTANCES - 1) + feedback.DISTANCES - 1
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))

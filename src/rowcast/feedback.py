@@ -94,6 +94,11 @@ def mean_moves(sums: np.ndarray, biases: np.ndarray | int) -> np.ndarray:
     return (biases * sums + 16) >> 5
 
 
+def level_moves(feedback: np.ndarray, gains: np.ndarray | int) -> np.ndarray:
+    """How far the surprise feedback F moves levels: floor((k F + 8) / 16)."""
+    return (gains * feedback + 8) >> 4
+
+
 def move(levels: np.ndarray, feedback: np.ndarray, gains: np.ndarray | int) -> np.ndarray:
-    """Levels moved by floor((k F + 8) / 16), clamped to the family's range."""
-    return np.minimum(np.maximum(levels + ((gains * feedback + 8) >> 4), fam.LS_LO), fam.LS_HI)
+    """Levels moved by `level_moves`, clamped to the family's range."""
+    return np.minimum(np.maximum(levels + level_moves(feedback, gains), fam.LS_LO), fam.LS_HI)
