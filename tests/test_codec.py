@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from PIL import Image
 
 import rowcast
-from rowcast import entropy, tuning
+from rowcast import codec, entropy, tuning
 from rowcast import family as fam
 from rowcast.codec import (
     Feedback,
@@ -117,6 +117,20 @@ def test_feedback_gains_never_cost_more_and_save_on_real_photos(default_engine, 
         if images is rgb64:
             size = sum(len(c.payload) for c in adaptive)
             assert size < 0.99 * sum(len(c.payload) for c in tuned)
+
+
+def test_offsets_chosen_again_after_the_gains_never_cost_more_and_save(default_engine,
+                                                                       rgb64, monkeypatch):
+    """The second choice of scale offsets, with the feedback gains in place, is kept only
+    when the exact code length falls: no image's cross-entropy grows (beyond float rounding
+    of the search's sums), and on the held-out RGB thumbnails the payloads shrink by more
+    than 0.3% (0.49% measured on these 8, 0.43% on the benchmark's 32)."""
+    again = encode_batch(default_engine, rgb64, workers=1)
+    monkeypatch.setattr(codec, "_offsets_again", lambda tune, near, *_: (tune, near, 0.0))
+    once = encode_batch(default_engine, rgb64, workers=1)
+    for a, o in zip(again, once, strict=True):
+        assert a.cross_entropy <= o.cross_entropy + 0.01
+    assert sum(len(c.payload) for c in again) < 0.997 * sum(len(c.payload) for c in once)
 
 
 def test_encoder_and_decoder_tables_are_identical(default_engine, rgb64):

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -268,7 +268,8 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     """(the tuning that gives this image the shortest code, or None when it would not save
     the bytes of its header; its `Feedback` when it has feedback gains, else None): what
     `image_tables` needs for the encoder's tables. The search: scale offsets band by band,
-    then coupling offsets, then with method "adaptive" the bias gains and the scale gains."""
+    then coupling offsets, then with method "adaptive" the bias gains, the scale gains, and
+    the scale offsets and scale gains once more (`_offsets_again`)."""
     if method == "model":
         return None, None
     known = rgb.reshape(3, -1).T.astype(np.int64)
@@ -323,9 +324,58 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         gains, by_scales = tuning.choose_gains(scale_bits, planes)
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
         saved += by_means + by_scales
+        tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
+                                          p.ls8[:, :planes], values, residuals)
+        saved += more
     if saved <= 8 * tuning.HEADER_BYTES[tune.method]:
         return None, None
     return tune, near if tune.feedback else None
+
+
+def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
+                   bits, planes: int, shape: tuple, levels: np.ndarray, values: np.ndarray,
+                   residuals: np.ndarray) -> tuple[Tune, Feedback, float]:
+    """(tuning, its feedback, bits saved): the scale offsets chosen again with the scale
+    gains' level moves in place, then the scale gains again, each kept only if the exact
+    code length (the surprises measured anew) falls. The first offsets were chosen before
+    any feedback, which moves levels on average, so they leave bits behind."""
+
+    def total(t: Tune) -> tuple[float, Feedback]:
+        tp = pixel_params(raw, flat_base, t)
+        nb = Feedback.of(tp, values, residuals, shape, t.biases)
+        return sum(float(bits(tp, c, level_moves(nb.sums[:, c], c, t.gains[c]),
+                              nb.means_moved[:, c]).sum()) for c in range(planes)), nb
+
+    untuned = pixel_params(raw, flat_base)
+    coupled = replace(untuned, couplings=tuning.couple(untuned.couplings, tune.couplings))
+
+    def moved_bits(c: int, d: np.ndarray) -> np.ndarray:
+        """Bits (K, N) of plane c for K offsets d (K, 1), with the level moves of `near`'s
+        surprises (a second-component level is clamped once, not twice: only a proposal)."""
+        level = levels[:, c]
+        moves = tuning.apply(level + d, 0) + level_moves(near.sums[:, c], c, tune.gains[c])
+        return bits(coupled, c, moves - level, near.means_moved[:, c])
+
+    best, best_near = tune, near
+    best_bits, _ = total(tune)
+    before = best_bits
+    offsets, _ = tuning.choose(moved_bits, levels)
+    trial = Tune.of(offsets, tune.couplings, tune.gains, tune.biases)
+    trial_bits, trial_near = total(trial)
+    if trial_bits < best_bits:
+        best, best_near, best_bits = trial, trial_near, trial_bits
+        tp = pixel_params(raw, flat_base, trial)
+
+        def scale_bits(c: int, k: np.ndarray) -> np.ndarray:
+            moves = level_moves(trial_near.sums[:, c], c, k)
+            return bits(tp, c, moves, trial_near.means_moved[:, c]).sum(axis=1)
+
+        gains, _ = tuning.choose_gains(scale_bits, planes)
+        trial = Tune.of(offsets, tune.couplings, gains, tune.biases)
+        trial_bits, trial_near = total(trial)
+        if trial_bits < best_bits:
+            best, best_near, best_bits = trial, trial_near, trial_bits
+    return best, best_near, before - best_bits
 
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> Coded:
