@@ -182,3 +182,45 @@ def test_thumbnail_sized_images_train_at_their_own_size(tmp_path):
     sizes = sorted(p.shape[0] for p in photos)
     assert 64 in sizes and 32 in sizes  # the thumbnail at 1x and 2x
     assert 300 not in sizes and 150 in sizes  # the photograph only reduced
+
+
+def test_a_users_held_out_folder_is_validated_on_and_never_trained_on(tmp_path, capsys):
+    """`--held-out DIR` (here a folder inside the data folder) holds its images out of
+    training and validates on them at their own size; the run reports where it started
+    from, and the exported figure is exactly the coder's cross-entropy on those tiles
+    (the source-coding floor that the payloads approach)."""
+    data = tmp_path / "images"
+    later = data / "later"
+    later.mkdir(parents=True)
+    for i in range(3):
+        Image.fromarray(smooth_image(i, 48)).save(data / f"cam{i}.png")
+    for i in (8, 9):
+        Image.fromarray(smooth_image(i, 48)).save(later / f"cam{i}.png")
+    cfg = Config(data=str(data), out=str(tmp_path / "run"), held_out=str(later))
+    photos, _, held = load_pools(cfg)
+    everything, _, _ = load_pools(Config(data=str(data), out=str(tmp_path / "run")))
+    assert len(held) == 2 and len(photos) == 3 * len(everything) // 5
+    assert {a[..., :3].tobytes() for a in held} == {smooth_image(i, 48).tobytes() for i in (8, 9)}
+    mine = tmp_path / "cams.safetensors"
+    main(str(data), str(tmp_path / "run"), minutes=0.03, batch=2, resume="default",
+         held_out=str(later), export=str(mine))
+    printed = capsys.readouterr().out
+    assert "validation at the start: " in printed and " at the start)" in printed
+    model = load_model(mine)
+    card = model.card["training"]
+    assert card["validation"] == f"48-px tiles of the images in {later} (held out of training)"
+    assert "--held-out" in card["commands"][-1] and "val_start_bpsp" in card
+    tiles = [smooth_image(i, 48).transpose(2, 0, 1).copy() for i in (8, 9)]
+    coded = encode_batch(Engine(model), tiles, "model")
+    floor = sum(c.cross_entropy for c in coded) / sum(t.size for t in tiles)
+    assert card["val_integer_bpsp"] == round(floor, 4)
+
+
+def test_a_held_out_folder_without_images_is_refused(tmp_path):
+    """An empty --held-out folder would validate on nothing: the run stops and says so."""
+    data = tmp_path / "images"
+    (data / "empty").mkdir(parents=True)
+    Image.fromarray(smooth_image(1, 48)).save(data / "cam.png")
+    with pytest.raises(SystemExit, match="empty: no images to validate on"):
+        load_pools(Config(data=str(data), out=str(tmp_path / "run"),
+                          held_out=str(data / "empty")))

@@ -49,6 +49,7 @@ class Config:
     dark_fraction: float = 0.15
     sensor_fraction: float = 0.0  # of the crops not under-exposed (`sensor_frame`)
     validation: tuple[str, ...] = VALIDATION
+    held_out: str | None = None  # a folder of the user's images to validate on instead
     width: int = 48
     hidden: int = 64
     depth: int = 4
@@ -67,6 +68,7 @@ def command(cfg: Config) -> str:
     extra += f" --components {cfg.components}" * (cfg.components > 1)
     extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
     extra += f" --sensor {cfg.sensor_fraction:g}" * (cfg.sensor_fraction > 0)
+    extra += f" --held-out {cfg.held_out}" * (cfg.held_out is not None)
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
@@ -95,23 +97,38 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
     """(photo pyramids RGB, cut-out pyramids RGBA, validation images RGBA) from a directory.
 
     A sub-folder named `cutouts` holds RGBA cut-outs; everything else is a photograph.
-    Images whose file names are in `cfg.validation` are held out for validation.
+    The images in the folder `cfg.held_out` are the validation images if it is given (and
+    never trained on, even inside the data folder); otherwise those whose file names are in
+    `cfg.validation`.
     """
     photos, cutouts, held = [], [], []
-    for path in sorted(Path(cfg.data).rglob("*")):
-        if path.suffix.lower() not in IMAGE_SUFFIXES:
+    own = None if cfg.held_out is None else Path(cfg.held_out).resolve()
+    if own is not None:
+        held = [_rgba(path) for path in _images(own)]
+        if not held:
+            raise SystemExit(f"{cfg.held_out}: no images to validate on")
+    for path in _images(Path(cfg.data)):
+        if own is not None and own in path.resolve().parents:
             continue
-        with Image.open(path) as im:
-            rgba = im.convert("RGBA")
-        if path.name in cfg.validation:
-            held.append(np.asarray(rgba))
+        rgba = _rgba(path)
+        if own is None and path.name in cfg.validation:
+            held.append(rgba)
         elif "cutouts" in path.parts:
-            cutouts += _pyramid(rgba, CUTOUT_SCALES, cfg.crop)
+            cutouts += _pyramid(Image.fromarray(rgba), CUTOUT_SCALES, cfg.crop)
         else:
-            photos += _pyramid(rgba.convert("RGB"), PHOTO_SCALES, cfg.crop)
+            photos += _pyramid(Image.fromarray(rgba).convert("RGB"), PHOTO_SCALES, cfg.crop)
     if not photos:
         raise SystemExit(f"{cfg.data}: no training photographs found")
     return photos, cutouts, held
+
+
+def _images(folder: Path) -> list[Path]:
+    return [p for p in sorted(folder.rglob("*")) if p.suffix.lower() in IMAGE_SUFFIXES]
+
+
+def _rgba(path: Path) -> np.ndarray:
+    with Image.open(path) as im:
+        return np.asarray(im.convert("RGBA"))
 
 
 def _random_crop(rng: np.random.Generator, img: np.ndarray, c: int) -> np.ndarray:
@@ -177,6 +194,28 @@ def gray_of(rgb: np.ndarray) -> np.ndarray:
     """ITU-R 601 luma in integers, as Pillow's convert('L') computes it."""
     r, g, b = (rgb[..., i].astype(np.int32) for i in range(3))
     return ((r * 19595 + g * 38470 + b * 7471 + 0x8000) >> 16).astype(np.uint8)
+
+
+def own_tile_size(held: list[np.ndarray]) -> int:
+    """The tile side for a user's validation images: 64 px, or their smallest side."""
+    return min(64, *(min(a.shape[:2]) for a in held))
+
+
+def own_validation_set(held: list[np.ndarray]) -> torch.Tensor:
+    """Every tile of `own_tile_size` on a grid of a user's validation images, as they are
+    (thumbnails are coded at their own size, so they are not reduced)."""
+    size = own_tile_size(held)
+    tiles = [a[y : y + size, x : x + size, :3].transpose(2, 0, 1) for a in held
+             for y in range(0, a.shape[0] - size + 1, size)
+             for x in range(0, a.shape[1] - size + 1, size)]
+    return torch.from_numpy(np.stack(tiles)).float()
+
+
+def validation_tiles(cfg: Config, held: list[np.ndarray]) -> torch.Tensor | None:
+    """The run's validation tiles: a user's folder's or the corpus's; None without any."""
+    if not held:
+        return None
+    return own_validation_set(held) if cfg.held_out is not None else validation_set(held)
 
 
 def validation_set(held: list[np.ndarray], size: int = 64) -> torch.Tensor:
@@ -336,7 +375,7 @@ def train(cfg: Config, log=print) -> Predictor:
     torch.set_num_threads(cfg.threads)
     rng = np.random.default_rng(cfg.seed)
     photos, cutouts, held = load_pools(cfg)
-    tiles = validation_set(held) if held else None
+    tiles = validation_tiles(cfg, held)
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
     model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components)
@@ -350,6 +389,9 @@ def train(cfg: Config, log=print) -> Predictor:
                       left=model.left, activity=model.activity, components=model.components)
         step, before = history[-1]["steps"], history[-1]["minutes"]
         log(f"resuming {cfg.resume} after {step} steps, {before:.1f} min")
+        if tiles is not None:  # what the run must beat, on this run's validation tiles
+            start_bpsp = evaluate(model, tiles, model.quant)
+            log(f"validation at the start: {start_bpsp:.4f} bits per subpixel")
     commands.append(command(cfg))  # after a resume: the sizes of the model it continues
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
     out = Path(cfg.out)
@@ -384,6 +426,8 @@ def train(cfg: Config, log=print) -> Predictor:
             last_save = time.monotonic()
     summary = {"steps": step, "minutes": before + (time.monotonic() - start) / 60,
                "train_bpsp": ema}
+    if cfg.resume and tiles is not None:
+        summary["val_start_bpsp"] = start_bpsp
     if tiles is not None:
         summary["val_float_bpsp"] = evaluate(model, tiles, False)
         summary["val_quant_bpsp"] = evaluate(model, tiles, True)
@@ -409,13 +453,16 @@ def main(
     components: int = 1,
     depth: int | None = None,
     sensor: float = 0.0,
+    held_out: str | None = None,
     export: str | None = None,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
-    [--hidden N --left N --activity --components 2 --depth N --sensor F] [--export FILE];
-    sizes not given are the defaults for a new run and the run's own when resuming; larger
-    ones grow it (see `grow`); --sensor is the fraction of crops made faint noisy sensor
-    frames; --export writes the finished run's integer model file, named for its stem."""
+    [--hidden N --left N --activity --components 2 --depth N --sensor F] [--held-out DIR]
+    [--export FILE]; sizes not given are the defaults for a new run and the run's own when
+    resuming; larger ones grow it (see `grow`); --sensor is the fraction of crops made
+    faint noisy sensor frames; --held-out names a folder of images to validate on, never
+    trained on; --export writes the finished run's integer model file, named for its
+    stem."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
@@ -424,16 +471,18 @@ def main(
                  hidden=sizes["hidden"] if hidden is None else hidden,
                  left=sizes["left"] if left is None else left, activity=activity,
                  components=components, depth=sizes["depth"] if depth is None else depth,
-                 sensor_fraction=sensor),
+                 sensor_fraction=sensor, held_out=held_out),
           log=lambda s: print(s, flush=True))
     if export:
         summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
         from rowcast.quantize import load_model
 
-        figure = summary.get("val_integer_bpsp")
+        figure, start = summary.get("val_integer_bpsp"), summary.get("val_start_bpsp")
         print(f"{export}: model {Path(export).stem} ({load_model(Path(export)).sha256.hex()[:16]}"
               f"), {summary['steps']} steps in {summary['minutes']} min, validation "
-              + ("none" if figure is None else f"{figure} bits per subpixel"), flush=True)
+              + ("none" if figure is None else f"{figure} bits per subpixel")
+              + ("" if start is None or figure is None else f" ({start} at the start)"),
+              flush=True)
 
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
@@ -471,14 +520,19 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
                 f"over photo crops); flips/rotations, {cfg.dark_fraction:.0%} under-exposed, "
                 f"{cfg.sensor_fraction:.0%} of the rest faint noisy sensor frames, "
                 f"{cfg.gray_fraction:.0%} gray",
-        "validation": f"64-px tiles of {', '.join(cfg.validation)} (held out of training)"
-                      if held else "none (no validation images in the data)",
+        "validation": "none (no validation images in the data)" if not held else (
+            f"{own_tile_size(held)}-px tiles of the images in {cfg.held_out}"
+            if cfg.held_out is not None else f"64-px tiles of {', '.join(cfg.validation)}")
+            + " (held out of training)",
         "steps": history[-1].get("steps", history[-1].get("step")),
         "minutes": round(history[-1]["minutes"], 1),
         "commands": meta["state"].get("commands", [command(cfg)]),
     }
+    start = meta["state"].get("summary", {}).get("val_start_bpsp")
+    if start is not None:
+        summary["val_start_bpsp"] = round(start, 4)
     if held:
-        tiles = validation_set(held)
+        tiles = validation_tiles(cfg, held)
         summary["val_float_bpsp"] = round(evaluate(net, tiles, False), 4)
         summary["val_quant_bpsp"] = round(evaluate(net, tiles, True), 4)
         card, tensors = export(net, name)
