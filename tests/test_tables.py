@@ -1,5 +1,7 @@
 """Specification of the integer tables that feed the range coder."""
 
+import decimal
+
 import numpy as np
 
 from rowcast import entropy
@@ -7,10 +9,12 @@ from rowcast import family as fam
 from rowcast.tables import (
     CDF_ONE,
     D_MIN,
+    LENGTH_ONE,
     LEVELS,
     TABLE_TOTAL,
     WIDTH,
     all_tables,
+    code_lengths,
     exact_logistic_cdf,
     logistic_cdf,
     logistic_tables,
@@ -127,3 +131,34 @@ def test_two_component_tables_are_the_weighted_sum_or_a_pure_table():
     assert np.array_equal(tables.astype(np.int64), want) and tables.dtype == np.float32
     mixed = (weight > 0) & (weight < fam.WEIGHT_ONE)
     assert np.all(tables[mixed].sum(1, dtype=np.float64) == fam.WEIGHT_ONE * TABLE_TOTAL)
+
+
+def test_the_searchs_code_lengths_are_the_rounded_logarithms_on_every_platform():
+    """code_lengths(w)[n] = round(2**16 log2(w * TABLE_TOTAL / n)), as Python's decimal
+    module (correctly rounded) gives it, at both ends and a spread of counts; one
+    component's table is the two-component one at multiples of 64; and no exact value sits
+    within 4e-7 of a rounding boundary, so a log2 off by a few ulps (about 1e-9 here) on
+    another machine rounds every entry the same way."""
+    ctx = decimal.Context(prec=40)
+    mixed = code_lengths(fam.WEIGHT_ONE)
+    total = fam.WEIGHT_ONE * TABLE_TOTAL
+    for n in sorted({1, 2, 3, 64, 255, 65536, total - 1, total, *range(1, total, 99_991)}):
+        exact = ctx.multiply(ctx.divide(ctx.ln(ctx.divide(total, n)), ctx.ln(2)), LENGTH_ONE)
+        assert mixed[n] == int(exact.quantize(decimal.Decimal(1), decimal.ROUND_HALF_UP)), n
+    assert np.array_equal(code_lengths()[1:], mixed[fam.WEIGHT_ONE :: fam.WEIGHT_ONE])
+    n = np.arange(1, total + 1, dtype=np.float64)
+    scaled = np.log2(total / n) * LENGTH_ONE
+    assert np.abs(scaled - np.floor(scaled) - 0.5).min() > 4e-7
+
+
+def test_summed_code_lengths_are_the_cross_entropy_to_within_rounding():
+    """Summed over an image's subpixels, the integer code lengths are the model's
+    cross-entropy (the source-coding floor) to within half a unit per subpixel."""
+    rng = np.random.default_rng(5)
+    mu4 = rng.integers(fam.MU_LO, fam.MU_HI + 1, 4096)
+    ls8 = rng.integers(fam.LS_LO, fam.LS_HI + 1, 4096)
+    tables = logistic_tables(mu4, ls8)
+    symbols = np.clip(mu4 // 4 + rng.integers(-20, 21, 4096), 0, 255)
+    counts = tables[np.arange(4096), symbols].astype(np.int64)
+    bits = entropy.cross_entropy_bits(symbols, tables, total=TABLE_TOTAL)
+    assert abs(code_lengths()[counts].sum() / LENGTH_ONE - bits) <= 4096 * 0.5 / LENGTH_ONE

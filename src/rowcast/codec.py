@@ -19,7 +19,15 @@ from rowcast import family as fam
 from rowcast.family import base_prediction
 from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
-from rowcast.tables import LEVELS, TABLE_TOTAL, all_tables, mixture_tables, table_rows
+from rowcast.tables import (
+    LENGTH_ONE,
+    LEVELS,
+    TABLE_TOTAL,
+    all_tables,
+    code_lengths,
+    mixture_tables,
+    table_rows,
+)
 from rowcast.workers import run_split, shares
 
 CHUNK = 2048  # subpixels per encoder call: keeps the tables in cache
@@ -278,18 +286,21 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     p = pixel_params(raw, flat_base)
     residuals = known - flat_base
     flat = all_tables().reshape(-1)
+    lengths = code_lengths()
+    mixed_lengths = None if raw.shape[1] == fam.OUTPUTS else code_lengths(fam.WEIGHT_ONE)
 
     def bits(p: Params, c: int, d: np.ndarray | None = None,
              m: np.ndarray | int = 0) -> np.ndarray:
-        """Bits, up to a constant, of plane c's subpixels (N,), or (K, N) with the levels
-        moved by each of K offsets d (K, 1) or moves (K, N), or the means by moves m."""
+        """Code lengths in 1/LENGTH_ONE bit (exact integers: `code_lengths`) of plane c's
+        subpixels (N,), or (K, N) with the levels moved by each of K offsets d (K, 1) or
+        moves (K, N), or the means by moves m."""
         rows, rows_b = plane_rows(p, c, residuals, d, m)
-        count = flat[rows * 256 + known[:, c]]
-        if rows_b is not None:  # w x a + (64 - w) x b: a pure table's count times 64 too
-            w = p.weight[:, c].astype(np.float32)
-            count *= w
-            count += (fam.WEIGHT_ONE - w) * flat[rows_b * 256 + known[:, c]]
-        return -np.log2(count)
+        count = flat[rows * 256 + known[:, c]].astype(np.int64)
+        if rows_b is None:
+            return lengths[count]
+        w = p.weight[:, c]  # w x a + (64 - w) x b: a pure table's count times 64 too
+        return mixed_lengths[w * count + (fam.WEIGHT_ONE - w) * flat[
+            rows_b * 256 + known[:, c]].astype(np.int64)]
 
     offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes])
     tune, near = Tune.of(offsets, np.zeros(3, np.int64)), None
@@ -327,7 +338,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
                                           p.ls8[:, :planes], values, residuals)
         saved += more
-    if saved <= 8 * tuning.HEADER_BYTES[tune.method]:
+    if saved <= 8 * tuning.HEADER_BYTES[tune.method] * LENGTH_ONE:
         return None, None
     return tune, near if tune.feedback else None
 
@@ -335,7 +346,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
 def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
                    bits, planes: int, shape: tuple, levels: np.ndarray, values: np.ndarray,
                    residuals: np.ndarray) -> tuple[Tune, Feedback, float]:
-    """(tuning, its feedback, bits saved): the scale offsets chosen again with the scale
+    """(tuning, its feedback, code length saved): the scale offsets chosen again with the scale
     gains' level moves in place, then the scale gains again, each kept only if the exact
     code length (the surprises measured anew) falls. The first offsets were chosen before
     any feedback, which moves levels on average, so they leave bits behind."""

@@ -98,8 +98,8 @@ def choose(cost, levels: np.ndarray) -> tuple[np.ndarray, float]:
     """(offsets (3, 8) that minimise the code length band by band, bits saved by them).
 
     levels: the untuned (first component's) levels (N, P) of an image's subpixels (P
-    planes); cost(c, d) gives the bits (K, N) of plane c's subpixels for each of K offsets
-    d (K, 1). Bands are independent, so the choice is exact; a plane not coded keeps zero
+    planes); cost(c, d) gives the code lengths (K, N) of plane c's subpixels for each of K
+    offsets d (K, 1). Bands are independent, so the choice is exact; a plane not coded keeps zero
     offsets, and ties go to the offset nearest zero (an empty band stays at 0).
     """
     offsets = np.zeros((fam.CHANNELS, len(BANDS) + 1), np.int64)
@@ -107,8 +107,9 @@ def choose(cost, levels: np.ndarray) -> tuple[np.ndarray, float]:
     candidates = OFFSETS[order]  # zero first
     saved = 0.0
     for c in range(levels.shape[1]):
-        in_band = band_of(levels[:, c])[:, None] == np.arange(len(BANDS) + 1)
-        per_band = cost(c, candidates[:, None]) @ in_band  # (offsets, bands)
+        in_band = (band_of(levels[:, c])[:, None] == np.arange(len(BANDS) + 1)).astype(float)
+        # (offsets, bands); float64 BLAS sums integer costs exactly (all below 2**53)
+        per_band = cost(c, candidates[:, None]).astype(float) @ in_band
         best = np.argmin(per_band, axis=0)
         offsets[c] = candidates[best]
         saved += float((per_band[0] - per_band[best, np.arange(len(best))]).sum())
