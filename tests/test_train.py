@@ -106,9 +106,9 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
 
 @pytest.mark.parametrize("quant", [False, True])
 def test_growing_the_head_keeps_what_the_network_computes(quant):
-    """A wider head, a longer left window, the activity input and a deeper row stack added
-    to a trained network change none of its outputs, float or quantised, so a run can
-    continue from it."""
+    """A wider head, a longer left window, the activity input and a deeper and wider row
+    stack added to a trained network change none of its outputs, float or quantised, so a
+    run can continue from it."""
     torch.manual_seed(2)
     net = Predictor(width=8, hidden=8, depth=2)
     x = torch.randint(0, 256, (2, 3, 12, 12)).float()
@@ -116,12 +116,17 @@ def test_growing_the_head_keeps_what_the_network_computes(quant):
     net.quant = quant
     with torch.no_grad():
         net.out.bias.normal_()  # outputs that depend on everything
-    big = grow(net, hidden=16, left=5, activity=True, depth=4)
-    assert (big.hidden, big.left, big.activity, big.depth) == (16, 5, True, 4)
+    big = grow(net, hidden=16, left=5, activity=True, depth=4, width=12)
+    assert (big.hidden, big.left, big.activity, big.depth, big.width) == (16, 5, True, 4, 12)
     with torch.no_grad():
         assert torch.equal(net(x), big(x))
+        wider = grow(big, hidden=16, left=5, activity=True, depth=4, width=20)
+        assert torch.equal(net(x), wider(x))  # with the activity input already in place
+    assert wider.rows[1].weight[12:].abs().sum() > 0  # new units start at random, not zero
     with pytest.raises(SystemExit, match="shallower"):
         grow(big, hidden=16, left=5, activity=True, depth=3)
+    with pytest.raises(SystemExit, match="narrower"):
+        grow(big, hidden=16, left=5, activity=True, depth=4, width=10)
 
 
 @pytest.mark.parametrize("name", bundled_names())
@@ -224,3 +229,27 @@ def test_a_held_out_folder_without_images_is_refused(tmp_path):
     with pytest.raises(SystemExit, match="empty: no images to validate on"):
         load_pools(Config(data=str(data), out=str(tmp_path / "run"),
                           held_out=str(data / "empty")))
+
+
+def test_training_runs_on_a_named_device_and_refuses_one_that_is_missing(tmp_path):
+    """--device moves training (model, batches, validation) to a torch device; the checkpoint
+    and model file are the same kind of CPU file wherever it ran. A CUDA device on a
+    machine without one, or a name torch does not know, stops the run with the reason."""
+    data = tmp_path / "images"
+    data.mkdir()
+    Image.fromarray(smooth_image(3, 48)).save(data / "cam.png")
+    held = tmp_path / "later"
+    held.mkdir()
+    Image.fromarray(smooth_image(4, 48)).save(held / "cam.png")
+    device = "cuda" if torch.cuda.is_available() else "cpu"
+    mine = tmp_path / "dev.safetensors"
+    main(str(data), str(tmp_path / "run"), minutes=0.02, batch=2, resume="default",
+         held_out=str(held), export=str(mine), device=device)
+    _, meta = load_checkpoint(tmp_path / "run")
+    assert meta["config"]["device"] == device
+    assert load_model(mine).card["training"]["val_integer_bpsp"] > 0
+    if not torch.cuda.is_available():
+        with pytest.raises(SystemExit, match="--device cuda: this machine has no CUDA device"):
+            main(str(data), str(tmp_path / "x"), minutes=0.01, device="cuda")
+    with pytest.raises(SystemExit, match="--device warp9: not a torch device name"):
+        main(str(data), str(tmp_path / "x"), minutes=0.01, device="warp9")

@@ -106,7 +106,7 @@ class Predictor(nn.Module):
 
     def in_steps(self) -> list[torch.Tensor]:
         """The real step of each input channel of each layer, in `layers()` order."""
-        px = torch.full((4,), PIXEL_STEP)
+        px = torch.full((4,), PIXEL_STEP, device=self.out.weight.device)
         steps = [px]
         for layer in self.rows[:-1]:
             steps.append(layer.step.expand(self.width))
@@ -146,7 +146,7 @@ def left_window(x: torch.Tensor, left: int) -> torch.Tensor:
 
 def activity_planes(x: torch.Tensor) -> torch.Tensor:
     """`family.row_activity` of pixels x (B, 3, H, W), spread over each row."""
-    act = torch.from_numpy(fam.row_activity(x.detach().numpy())).to(x.dtype)
+    act = torch.from_numpy(fam.row_activity(x.detach().cpu().numpy())).to(x)
     return act.unsqueeze(-1).expand(-1, -1, -1, x.shape[-1])
 
 
@@ -164,9 +164,9 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
     """
     r = round_ste if quant else (lambda t: t)
     components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
-    gains = torch.tensor(fam.output_gains(components), dtype=y.dtype).view(1, -1, 1, 1)
-    q = r(y * gains)
-    base = torch.from_numpy(fam.base_prediction(x.detach().numpy())).to(x.dtype)
+    gains = torch.tensor(fam.output_gains(components), dtype=y.dtype, device=y.device)
+    q = r(y * gains.view(1, -1, 1, 1))
+    base = torch.from_numpy(fam.base_prediction(x.detach().cpu().numpy())).to(x)
     cp = torch.clamp(q[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX, fam.COUPLE_MAX)
     res = x - base
     shift_g = r(cp[:, 0] * res[:, 0] / 16.0)

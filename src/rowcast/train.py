@@ -58,6 +58,7 @@ class Config:
     components: int = 1
     seed: int = 0
     threads: int = 2
+    device: str = "cpu"  # where training runs: "cpu", or a torch device such as "cuda"
     resume: str | None = None  # a run, model file or bundled model name to continue from
 
 
@@ -67,6 +68,8 @@ def command(cfg: Config) -> str:
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     extra += f" --components {cfg.components}" * (cfg.components > 1)
     extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
+    extra += f" --width {cfg.width}" * (cfg.width != Config.width)
+    extra += f" --device {cfg.device}" * (cfg.device != Config.device)
     extra += f" --sensor {cfg.sensor_fraction:g}" * (cfg.sensor_fraction > 0)
     extra += f" --held-out {cfg.held_out}" * (cfg.held_out is not None)
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
@@ -249,8 +252,9 @@ def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | No
 def evaluate(model: Predictor, tiles: torch.Tensor, quant: bool) -> float:
     """Validation bits per subpixel in float or quantised mode."""
     saved, model.quant = model.quant, quant
-    total = sum(bits_per_subpixel(model, tiles[i : i + 16]).item() * len(tiles[i : i + 16])
-                for i in range(0, len(tiles), 16))
+    device = model.out.weight.device
+    total = sum(bits_per_subpixel(model, tiles[i : i + 16].to(device)).item()
+                * len(tiles[i : i + 16]) for i in range(0, len(tiles), 16))
     model.quant = saved
     return total / len(tiles)
 
@@ -272,37 +276,39 @@ def calibrate(model: Predictor, x: torch.Tensor) -> None:
 
 @torch.no_grad()
 def grow(model: Predictor, hidden: int, left: int, activity: bool,
-         components: int = 1, depth: int | None = None) -> Predictor:
+         components: int = 1, depth: int | None = None, width: int | None = None) -> Predictor:
     """A copy of `model` with a wider head, a longer left window, the activity input, a
-    second component or a deeper row stack, so that training can continue from a finished
-    run. It computes the same function, float or quantised (the old units' weights on new
-    inputs start at zero; a new row layer starts as the identity, with the step of the
-    layer before it), except that a new second component starts as a copy of the first at
-    e times its scale with 3/64 of the weight: a heavier tail, which already helps."""
+    second component, a deeper or a wider row stack, so that training can continue from a
+    finished run. It computes the same function, float or quantised (the old units'
+    weights on new inputs start at zero, new units start at random; a new row layer starts
+    as the identity, with the step of the layer before it), except that a new second
+    component starts as a copy of the first at e times its scale with 3/64 of the weight:
+    a heavier tail, which already helps."""
     depth = model.depth if depth is None else depth
-    if (hidden, left, activity, components, depth) == (
-            model.hidden, model.left, model.activity, model.components, model.depth):
+    width = model.width if width is None else width
+    if (hidden, left, activity, components, depth, width) == (
+            model.hidden, model.left, model.activity, model.components, model.depth,
+            model.width):
         return model
     if model.activity and model.left != left:
         raise SystemExit("cannot lengthen the left window of a model with the activity input")
-    if depth < model.depth:
-        raise SystemExit("cannot make the row stack shallower")
-    big = Predictor(model.width, hidden, depth, left, activity, components)
+    if depth < model.depth or width < model.width:
+        raise SystemExit("cannot make the row stack shallower or narrower")
+    big = Predictor(width, hidden, depth, left, activity, components)
     big.quant = model.quant
     for old, new in zip(model.rows, big.rows[: model.depth], strict=True):
-        new.load_state_dict(old.state_dict())
+        _copy_units(old, new, np.arange(old.weight.shape[1]))
     for new in big.rows[model.depth :]:  # out = in: the current row's middle tap, weight 1
         new.weight.zero_()
         new.bias.zero_()
-        new.weight[:, :, new.kh - 1, new.kw // 2] = torch.eye(model.width)
+        new.weight[:, :, new.kh - 1, new.kw // 2] = torch.eye(width)
         new.log_step.copy_(model.rows[-1].log_step)
-    for old, new in ((model.head1, big.head1), (model.head2, big.head2), (model.out, big.out)):
-        cout, cin = old.weight.shape[:2]
-        new.weight[:cout, :cin] = old.weight
-        new.weight[:cout, cin:] = 0.0  # old units ignore the new inputs
-        new.bias[:cout] = old.bias
-        if old.log_step is not None:
-            new.log_step.copy_(old.log_step)
+    # head 1's inputs: row-stack features, then the left window, then the activity
+    features, window = np.arange(model.width), width + np.arange(4 * model.left)
+    extra = width + 4 * left + np.arange(3 * model.activity)
+    _copy_units(model.head1, big.head1, np.concatenate([features, window, extra]))
+    for old, new in ((model.head2, big.head2), (model.out, big.out)):
+        _copy_units(old, new, np.arange(old.weight.shape[1]))
     if components > model.components:
         first = big.out.weight.shape[0] - fam.MIX_OUTPUTS
         for c in range(fam.CHANNELS):
@@ -314,11 +320,23 @@ def grow(model: Predictor, hidden: int, left: int, activity: bool,
     return big
 
 
+def _copy_units(old: QConv, new: QConv, columns: np.ndarray) -> None:
+    """Put old's units into the first units of new, reading old input i at new input
+    columns[i]; the old units ignore new's other inputs."""
+    cout = old.weight.shape[0]
+    new.weight[:cout] = 0.0
+    new.weight[:cout, torch.from_numpy(columns)] = old.weight
+    new.bias[:cout] = old.bias
+    if old.log_step is not None:
+        new.log_step.copy_(old.log_step)
+
+
 def save_checkpoint(model: Predictor, cfg: Config, state: dict, out: Path) -> None:
     """Float weights in safetensors plus a JSON of config and progress (atomic)."""
     out.mkdir(parents=True, exist_ok=True)
     tmp = out / "checkpoint.safetensors.tmp"
-    save_file({k: v.contiguous() for k, v in model.state_dict().items()}, str(tmp))
+    save_file({k: v.detach().cpu().contiguous() for k, v in model.state_dict().items()},
+              str(tmp))
     tmp.replace(out / "checkpoint.safetensors")
     meta = {"config": asdict(cfg), "state": state, "quant": model.quant}
     (out / "checkpoint.json.tmp").write_text(json.dumps(meta, indent=2))
@@ -366,11 +384,24 @@ def resumed_sizes(resume: str) -> dict:
     if (Path(resume) / "checkpoint.json").is_file():
         return asdict(saved_config(json.loads((Path(resume) / "checkpoint.json").read_text())))
     net, _, _ = starting_point(resume)
-    return {"hidden": net.hidden, "left": net.left, "depth": net.depth}
+    return {"hidden": net.hidden, "left": net.left, "depth": net.depth, "width": net.width}
+
+
+def training_device(name: str) -> torch.device:
+    """The torch device to train on; SystemExit naming the reason if there is none such.
+    Only training runs there: coding is integer arithmetic on the CPU."""
+    try:
+        device = torch.device(name)
+    except RuntimeError:
+        raise SystemExit(f"--device {name}: not a torch device name") from None
+    if device.type == "cuda" and not torch.cuda.is_available():
+        raise SystemExit(f"--device {name}: this machine has no CUDA device")
+    return device
 
 
 def train(cfg: Config, log=print) -> Predictor:
     """Run the schedule of the module docstring; returns the trained model."""
+    device = training_device(cfg.device)
     torch.manual_seed(cfg.seed)
     torch.set_num_threads(cfg.threads)
     rng = np.random.default_rng(cfg.seed)
@@ -384,7 +415,7 @@ def train(cfg: Config, log=print) -> Predictor:
         model, history, commands = starting_point(cfg.resume)
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
                      cfg.activity or model.activity, max(cfg.components, model.components),
-                     max(cfg.depth, model.depth))
+                     max(cfg.depth, model.depth), max(cfg.width, model.width))
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity, components=model.components)
         step, before = history[-1]["steps"], history[-1]["minutes"]
@@ -393,6 +424,7 @@ def train(cfg: Config, log=print) -> Predictor:
             start_bpsp = evaluate(model, tiles, model.quant)
             log(f"validation at the start: {start_bpsp:.4f} bits per subpixel")
     commands.append(command(cfg))  # after a resume: the sizes of the model it continues
+    model.to(device)
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
     out = Path(cfg.out)
     budget = cfg.minutes * 60.0
@@ -402,7 +434,7 @@ def train(cfg: Config, log=print) -> Predictor:
         progress = elapsed / budget
         for group in opt.param_groups:
             group["lr"] = cfg.lr * (0.02 + 0.98 * 0.5 * (1 + math.cos(math.pi * progress)))
-        x, mask = sample_batch(rng, cfg, photos, cutouts)
+        x, mask = (t.to(device) for t in sample_batch(rng, cfg, photos, cutouts))
         if not model.quant and progress >= cfg.qat_at:
             calibrate(model, x)
             model.quant = True
@@ -452,17 +484,20 @@ def main(
     activity: bool = False,
     components: int = 1,
     depth: int | None = None,
+    width: int | None = None,
     sensor: float = 0.0,
     held_out: str | None = None,
     export: str | None = None,
+    device: str = "cpu",
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
-    [--hidden N --left N --activity --components 2 --depth N --sensor F] [--held-out DIR]
-    [--export FILE]; sizes not given are the defaults for a new run and the run's own when
-    resuming; larger ones grow it (see `grow`); --sensor is the fraction of crops made
-    faint noisy sensor frames; --held-out names a folder of images to validate on, never
-    trained on; --export writes the finished run's integer model file, named for its
-    stem."""
+    [--hidden N --left N --activity --components 2 --depth N --width N --sensor F]
+    [--held-out DIR] [--export FILE] [--device cuda]; sizes not given are the defaults for
+    a new run and the run's own when resuming; larger ones grow it (see `grow`); --sensor
+    is the fraction of crops made faint noisy sensor frames; --held-out names a folder of
+    images to validate on, never trained on; --export writes the finished run's integer
+    model file, named for its stem; --device trains on a torch device such as a GPU (the
+    model file it writes codes the same on any machine)."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
@@ -471,7 +506,8 @@ def main(
                  hidden=sizes["hidden"] if hidden is None else hidden,
                  left=sizes["left"] if left is None else left, activity=activity,
                  components=components, depth=sizes["depth"] if depth is None else depth,
-                 sensor_fraction=sensor, held_out=held_out),
+                 width=sizes["width"] if width is None else width,
+                 sensor_fraction=sensor, held_out=held_out, device=device),
           log=lambda s: print(s, flush=True))
     if export:
         summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
