@@ -346,10 +346,11 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
 def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
                    bits, planes: int, shape: tuple, levels: np.ndarray, values: np.ndarray,
                    residuals: np.ndarray) -> tuple[Tune, Feedback, float]:
-    """(tuning, its feedback, code length saved): the scale offsets chosen again with the scale
-    gains' level moves in place, then the scale gains again, each kept only if the exact
-    code length (the surprises measured anew) falls. The first offsets were chosen before
-    any feedback, which moves levels on average, so they leave bits behind."""
+    """(tuning, its feedback, code length saved): the scale offsets chosen again with the
+    feedback's moves in place (the scale gains' level moves and the bias gains' mean
+    moves), then the scale gains again, each kept only if the exact code length (the
+    surprises measured anew) falls. The first offsets were chosen before any feedback,
+    which moves levels on average, so they leave bits behind."""
 
     def total(t: Tune) -> tuple[float, Feedback]:
         tp = pixel_params(raw, flat_base, t)
@@ -361,8 +362,9 @@ def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.nd
     coupled = replace(untuned, couplings=tuning.couple(untuned.couplings, tune.couplings))
 
     def moved_bits(c: int, d: np.ndarray) -> np.ndarray:
-        """Bits (K, N) of plane c for K offsets d (K, 1), with the level moves of `near`'s
-        surprises (a second-component level is clamped once, not twice: only a proposal)."""
+        """Code lengths (K, N) of plane c for K offsets d (K, 1), with the level moves of
+        `near`'s surprises (a second component's level is clamped once, not twice: this
+        only proposes)."""
         level = levels[:, c]
         moves = tuning.apply(level + d, 0) + level_moves(near.sums[:, c], c, tune.gains[c])
         return bits(coupled, c, moves - level, near.means_moved[:, c])
