@@ -9,6 +9,8 @@
     python scripts/make_golden.py retuned   # golden-retuned.rowcast (0.4.1: the encoder's
                                             # second choice of scale offsets; the mixture
                                             # archive came out unchanged, so it has none)
+    python scripts/make_golden.py compact   # gray/gate.png, golden-compact.rowcast (0.5:
+                                            # format 5, a gray entry's compact header)
 
 Each part ran once; the files are committed, and tests check that today's code still
 decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
@@ -93,6 +95,14 @@ def retuned() -> None:
                             GOLDEN / "golden-retuned.rowcast", model=GOLDEN / "tiny.safetensors"))
 
 
+def compact() -> None:
+    (GOLDEN / "gray").mkdir(exist_ok=True)
+    gate = np.asarray(Image.open(ROOT / "sample_images/gate/gate_night.png"))
+    Image.fromarray(gate[8:48, 12:60]).save(GOLDEN / "gray/gate.png")
+    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"],
+                            GOLDEN / "golden-compact.rowcast", model=GOLDEN / "tiny.safetensors"))
+
+
 def report(summary) -> None:
     for e in summary.entries:
         print(e["path"], e["method"], e["bytes"])
@@ -100,4 +110,4 @@ def report(summary) -> None:
 
 if __name__ == "__main__":
     {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed,
-     "adaptive": adaptive, "retuned": retuned}[sys.argv[1]]()
+     "adaptive": adaptive, "retuned": retuned, "compact": compact}[sys.argv[1]]()

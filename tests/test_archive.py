@@ -523,7 +523,7 @@ def test_every_single_byte_flip_is_caught_or_harmless(tmp_path: Path) -> None:
 def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) -> None:
     """Version 3 holds the same entries, offsets and payloads as version 2, with an index of
     variable-length numbers, no offsets, deflated by zlib (the index bytes are checked
-    against an independent packing of FORMAT.md's layout); version 4, what writers write
+    against an independent packing of FORMAT.md's layout); version 5, what writers write
     unless told otherwise, lays them out as version 3 does."""
     entries = SAMPLE + [stored(f"orchard/cam{i:02d}/2026-11-30T06-00.png", "L", 2, 2, i)
                         for i in range(12)]
@@ -533,9 +533,9 @@ def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) ->
     new = tmp_path / "v3" / "sample.rca"
     write_archive(new, MODEL, entries, version=3)
     assert struct.unpack("<H", new.read_bytes()[8:10]) == (3,)
-    newest = tmp_path / "v4.rca"
+    newest = tmp_path / "v5.rca"
     write_archive(newest, MODEL, entries)
-    assert struct.unpack("<H", newest.read_bytes()[8:10]) == (4,)
+    assert struct.unpack("<H", newest.read_bytes()[8:10]) == (5,)
     assert read_index(newest) == read_index(new)
     four, three = newest.read_bytes(), new.read_bytes()
     (at4, size4), (at3, size3) = locate_index(four), locate_index(three)
@@ -597,3 +597,24 @@ def test_a_packed_index_that_does_not_inflate_is_refused(tmp_path: Path) -> None
         dest.write_bytes(reseal(data, index))
         with pytest.raises(ArchiveError, match=reason):
             read_index(dest)
+
+
+def test_a_gray_entrys_tuning_header_is_compact_from_version_5(tmp_path: Path) -> None:
+    """From format version 5 a gray entry's tuned payload is a 4-byte header plus whole
+    words (adaptive: 5 bytes), while RGB entries keep 16 (18); version 4 keeps the full
+    header for both. Each writer refuses the other's gray lengths, and the reader records
+    the version that fixes the layout."""
+    compact = [Entry("g.png", "L", 2, 2, "tuned", bytes(32), b"\0" * 8),
+               Entry("a.png", "L", 2, 2, "adaptive", bytes(32), b"\0" * 9),
+               Entry("c.png", "RGB", 2, 2, "tuned", bytes(32), b"\0" * 20)]
+    write_archive(tmp_path / "v5.rca", MODEL, compact, version=5)
+    _, entries = read_index(tmp_path / "v5.rca")
+    assert [(e.length, e.version) for e in entries] == [(8, 5), (9, 5), (20, 5)]
+    with pytest.raises(ArchiveError, match="16-byte tuning header"):
+        write_archive(tmp_path / "v4.rca", MODEL, compact, version=4)
+    full = [Entry("g.png", "L", 2, 2, "adaptive", bytes(32), b"\0" * 22)]
+    write_archive(tmp_path / "v4.rca", MODEL, full, version=4)
+    assert read_index(tmp_path / "v4.rca")[1][0].version == 4
+    with pytest.raises(ArchiveError, match="5-byte tuning header"):
+        write_archive(tmp_path / "full.rca", MODEL, full, version=5)
+    assert not (tmp_path / "full.rca").exists()

@@ -84,10 +84,11 @@ def test_heldout_thumbnails_round_trip_exactly(default_engine, size):
 def test_payload_is_within_half_a_percent_of_the_cross_entropy(default_engine, rgb64, gray64):
     """Source-coding floor: a range coder pays at most a hair over the model's cross-entropy,
     and never less than it (less would mean the stated probabilities were not the coded ones)."""
-    for c in encode_batch(default_engine, rgb64) + encode_batch(default_engine, gray64):
-        floor = c.cross_entropy / 8
-        words = len(c.payload) - HEADER_BYTES.get(c.method, 0)  # the header is not coded
-        assert floor - 4 <= words <= 1.005 * floor + 16
+    for images, planes in ((rgb64, 3), (gray64, 1)):
+        for c in encode_batch(default_engine, images):
+            floor = c.cross_entropy / 8
+            words = len(c.payload) - tuning.header_bytes(c.method, planes)  # not coded
+            assert floor - 4 <= words <= 1.005 * floor + 16
 
 
 def test_scale_tuning_never_costs_more_and_saves_on_real_photos(default_engine, rgb64, gray64):
@@ -341,7 +342,8 @@ def forced_adaptive(engine, image, gains, biases):
                        biases)
     coder = entropy.encoder()
     entropy.encode(coder, *image_tables(out, rgb, base, planes, tune, near))
-    return tuning.pack(tune.offsets, tune.couplings, (gains, biases)) + entropy.finish(coder)
+    header = tuning.pack(tune.offsets, tune.couplings, (gains, biases), gray=planes == 1)
+    return header + entropy.finish(coder)
 
 
 @pytest.mark.parametrize("planes", [1, 3])

@@ -107,11 +107,11 @@ def decoded_golden(archive: str, model: Path) -> dict:
 def test_adaptive_golden_archives_decode_and_re_encode_to_the_same_bytes(tmp_path, archive,
                                                                          model, folders):
     """Format version 4 (the neighbours' feedback), with one and two components, as
-    today's encoder writes it: decoded, and re-encoded byte for byte by the default writer.
+    today's encoder writes it: decoded, and re-encoded byte for byte in format version 4.
     (The two-component archive of 0.4.0 came out the same from 0.4.1's encoder.)"""
     decoded_golden(archive, model)
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / f for f in folders], out, model=model)
+    rowcast.compress([GOLDEN / f for f in folders], out, model=model, version=4)
     assert out.read_bytes() == (GOLDEN / archive).read_bytes()
 
 
@@ -123,3 +123,33 @@ def test_the_adaptive_golden_archive_of_0_4_0_still_decodes():
     sky = {e.path: e for e in older}["sky.png"], {e.path: e for e in newer}["sky.png"]
     assert read_payload(GOLDEN / "golden-adaptive.rowcast", sky[0]) != read_payload(
         GOLDEN / "golden-retuned.rowcast", sky[1])
+
+
+def test_compact_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
+    """Format version 5: a gray entry's tuning header holds its one plane's fields alone
+    (4 bytes, or 5 with its gains); decoded and re-encoded byte for byte by the default
+    writer. Written as format 4, the same gray images carry the full 18-byte header ahead
+    of the same coder words, with the same tuning in it."""
+    archive = GOLDEN / "golden-compact.rowcast"
+    decoded = dict(rowcast.decode_entries(archive, model=TINY))
+    folders = {"leaf.png": "images", "orchard.png": "images", "sky.png": "tuned",
+               "gate.png": "gray"}
+    for entry, planes in decoded.items():
+        original = np.asarray(Image.open(GOLDEN / folders[entry.path] / entry.path))
+        expected = original[None] if original.ndim == 2 else original.transpose(2, 0, 1)
+        assert np.array_equal(planes, expected)
+    out = tmp_path / "again.rowcast"
+    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"], out, model=TINY)
+    assert out.read_bytes() == archive.read_bytes()
+    older = tmp_path / "v4.rowcast"
+    rowcast.compress([GOLDEN / "gray"], older, model=TINY, version=4)
+    (gate,) = [e for e in decoded if e.path == "gate.png"]
+    (gate4,) = rowcast.read_index(older)[1]
+    assert gate.mode == "L" and gate.method == gate4.method == "adaptive"
+    compact, full = read_payload(archive, gate), read_payload(older, gate4)
+    assert compact[5:] == full[18:]
+    tuning = [unpack(compact[:5]), unpack(full[:18])]
+    for a, b in zip(*tuning, strict=True):
+        assert np.array_equal(a, b)
+    _, _, gains, biases = tuning[0]
+    assert gains[0] and biases[0] < 0  # a negative nibble survives the compact byte

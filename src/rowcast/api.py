@@ -114,8 +114,9 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
 
     With `tune` (the default) each image may carry its own tuning (`tuning`) and feedback
     gains (`feedback`). `version` is the format version to write: the newest unless readers
-    of an older rowcast need 3 (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1
-    (rowcast 0.1; it has no tuning, so none is done).
+    of an older rowcast need 4 (rowcast 0.4; gray images' tuning headers in full), 3
+    (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1 (rowcast 0.1; it has no
+    tuning, so none is done).
 
     Every input is checked from its header first; then images are read and coded in
     groups of up to 32 (or 4 megapixels), same-sized ones together, and written in input
@@ -159,8 +160,9 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                 coded: dict[int, codec.Coded] = {}
                 for members in by_shape.values():
                     images = [group[j][1] for j in members]
-                    coded.update(zip(members, codec.encode_batch(engine, images, method),
-                                     strict=True))
+                    coded.update(zip(members, codec.encode_batch(
+                        engine, images, method, compact=version >= archive.COMPACT_FROM),
+                        strict=True))
                 for j, (name_j, planes_j, mode_j) in enumerate(group):
                     yield name_j, planes_j, mode_j, coded[j]
                 group, pixels = [], 0
@@ -239,7 +241,8 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
                 try:
                     decoded = codec.decode_batch(engine, payloads, planes, height, width,
                                                  progress=progress,
-                                                 methods=[e.method for e in part])
+                                                 methods=[e.method for e in part],
+                                                 compact=_compact(part[0]))
                 except (PayloadError, ValueError, RuntimeError) as exc:
                     raise _undecodable(src, engine, part, payloads, planes, exc) from None
             for e, planes_out in zip(part, decoded, strict=True):
@@ -255,11 +258,16 @@ def _undecodable(src: Path, engine: Engine, part: list[IndexEntry], payloads: li
     for e, payload in zip(part, payloads, strict=True):
         try:
             codec.decode_batch(engine, [payload], planes, e.height, e.width, workers=1,
-                               methods=[e.method])
+                               methods=[e.method], compact=_compact(e))
         except (PayloadError, ValueError, RuntimeError) as exc:
             return DataError(f"{src}: cannot decode {e.path} ({exc})")
     names = ", ".join(e.path for e in part)
     return DataError(f"{src}: cannot decode {names} ({batch_error})")
+
+
+def _compact(entry: IndexEntry) -> bool:
+    """Whether a gray entry's tuning header is in its compact form (format 5 on)."""
+    return entry.version >= archive.COMPACT_FROM
 
 
 def _payload(src: Path, entry: IndexEntry) -> bytes:

@@ -16,12 +16,12 @@ import tempfile
 import unicodedata
 import zlib
 from collections.abc import Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, BinaryIO
 
 MAGIC = b"ROWCAST\xe5"
-VERSION = 4  # what writers write unless told otherwise
+VERSION = 5  # what writers write unless told otherwise
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
@@ -30,11 +30,13 @@ METHODS: dict[str, int] = {"stored": 0, "model": 1, "tuned": 2, "adaptive": 3}
 _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
 _METHOD_NAMES: dict[int, str] = {code: name for name, code in METHODS.items()}
-# Version 2 added method 2; version 3 packed the index; version 4 added method 3.
+# Version 2 added method 2; version 3 packed the index; version 4 added method 3;
+# version 5 gave gray entries a compact tuning header.
 VERSION_METHODS: dict[int, frozenset[str]] = {
     1: frozenset({"stored", "model"}), 2: frozenset({"stored", "model", "tuned"}),
-    3: frozenset({"stored", "model", "tuned"}), 4: frozenset(METHODS)}
+    3: frozenset({"stored", "model", "tuned"}), 4: frozenset(METHODS), 5: frozenset(METHODS)}
 PACKED_FROM = 3  # the first version with a packed index
+COMPACT_FROM = 5  # the first version whose gray entries have compact tuning headers
 
 _PREFIX = struct.Struct("<8sH")  # magic, version
 _HEADER = struct.Struct("<8sHH32sB")  # magic, version, flags, model SHA-256, model name length
@@ -57,8 +59,10 @@ _MIN_PACKED_RECORD = 1 + 1 + _CODES.size + 1 + 1 + _DIGEST_BYTES + 1
 _MAX_INFLATION = 1032  # deflate never expands more than this: a bound on honest lengths
 _MAX_NUMBER_BYTES = 10  # a variable-length number below 2**64
 _WORD_BYTES = 4
-# bytes ahead of the coder's words (rowcast.tuning.HEADER_BYTES: the layout is fixed here too)
+# bytes ahead of the coder's words (rowcast.tuning.header_bytes: the layout is fixed here
+# too), and those of a gray entry from version COMPACT_FROM on
 _TUNING_BYTES: dict[str, int] = {"model": 0, "tuned": 16, "adaptive": 18}
+_GRAY_TUNING_BYTES: dict[str, int] = {"model": 0, "tuned": 4, "adaptive": 5}
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 
 
@@ -103,6 +107,7 @@ class IndexEntry:
     checksum: bytes
     offset: int
     length: int
+    version: int = field(default=VERSION, compare=False)  # the archive's: fixes the layout
 
 
 def _is_drive_prefix(component: str) -> bool:
@@ -164,21 +169,23 @@ def _check_dimensions(width: int, height: int) -> None:
             raise _InvalidError(f"{name} {value} outside 1..{_MAX_DIMENSION}")
 
 
-def _check_payload_length(mode: str, method: str, width: int, height: int, length: int) -> None:
+def _check_payload_length(mode: str, method: str, width: int, height: int, length: int,
+                          version: int) -> None:
     """Refuse payload lengths that cannot be right for the method (raw size, whole words)."""
     if method == "stored":
         expected = width * height * _BYTES_PER_PIXEL[mode]
         if length != expected:
             raise _InvalidError(f"stored payload is {length} bytes, expected {expected}")
     else:
-        header = _TUNING_BYTES[method]
+        gray = mode == "L" and version >= COMPACT_FROM
+        header = (_GRAY_TUNING_BYTES if gray else _TUNING_BYTES)[method]
         if length < header or (length - header) % _WORD_BYTES:
             after = f" after its {header}-byte tuning header" if header else ""
             raise _InvalidError(f"{method} payload is {length} bytes, not whole 32-bit "
                                 f"words{after}")
 
 
-def _check_entry(entry: Entry) -> str:
+def _check_entry(entry: Entry, version: int) -> str:
     """Validate a writer entry and return its canonical path."""
     path = _normalise(entry.path)
     if entry.mode not in MODES:
@@ -188,7 +195,8 @@ def _check_entry(entry: Entry) -> str:
     _check_dimensions(entry.width, entry.height)
     if len(entry.checksum) != _DIGEST_BYTES:
         raise _InvalidError(f"checksum is {len(entry.checksum)} bytes, expected {_DIGEST_BYTES}")
-    _check_payload_length(entry.mode, entry.method, entry.width, entry.height, len(entry.payload))
+    _check_payload_length(entry.mode, entry.method, entry.width, entry.height,
+                          len(entry.payload), version)
     return path
 
 
@@ -242,7 +250,7 @@ def _write_body(out: BinaryIO, header: bytes, entries: Iterable[Entry], dest: Pa
     seen: set[str] = set()
     for entry in entries:
         try:
-            path = _check_entry(entry)
+            path = _check_entry(entry, version)
             if path in seen:
                 raise _InvalidError(f"duplicate path {path!r}")
             if entry.method not in VERSION_METHODS[version]:
@@ -423,7 +431,8 @@ def _lookup(names: dict[int, str], code: int, what: str) -> str:
     return names[code]
 
 
-def _check_record(path: str, fields: tuple[Any, ...], start: int, limit: int) -> IndexEntry:
+def _check_record(path: str, fields: tuple[Any, ...], start: int, limit: int,
+                  version: int) -> IndexEntry:
     """Validate one decoded index record whose payload must span [start, ...) within limit."""
     if _normalise(path) != path:
         raise _InvalidError("path is not in canonical form")
@@ -431,18 +440,18 @@ def _check_record(path: str, fields: tuple[Any, ...], start: int, limit: int) ->
     mode = _lookup(_MODE_NAMES, mode_code, "mode")
     method = _lookup(_METHOD_NAMES, method_code, "method")
     _check_dimensions(width, height)
-    _check_payload_length(mode, method, width, height, length)
+    _check_payload_length(mode, method, width, height, length, version)
     if offset != start:
         raise _InvalidError(f"payload offset {offset} out of place (expected {start})")
     if offset + length > limit:
         raise _InvalidError(f"payload ends at {offset + length}, past the payload area ({limit})")
-    return IndexEntry(path, mode, width, height, method, checksum, offset, length)
+    return IndexEntry(path, mode, width, height, method, checksum, offset, length, version)
 
 
-def _parse_record(cursor: _Cursor, start: int, limit: int, packed: bool) -> IndexEntry:
-    """Decode and validate the next index record (packed: version 3's form, whose offset
-    is where the previous payload ended)."""
-    if not packed:
+def _parse_record(cursor: _Cursor, start: int, limit: int, version: int) -> IndexEntry:
+    """Decode and validate the next index record (packed from version 3 on: its offset is
+    where the previous payload ended)."""
+    if version < PACKED_FROM:
         path = _decode_utf8(cursor.take(cursor.unpack(_PATH_LEN)[0]), "entry path")
         fields = cursor.unpack(_ENTRY)
     else:
@@ -454,7 +463,7 @@ def _parse_record(cursor: _Cursor, start: int, limit: int, packed: bool) -> Inde
         width, height = cursor.number(), cursor.number()
         fields = (*codes, width, height, cursor.take(_DIGEST_BYTES), start, cursor.number())
     try:
-        return _check_record(path, fields, start, limit)
+        return _check_record(path, fields, start, limit, version)
     except _InvalidError as problem:
         raise _InvalidError(f"entry {path!r}: {problem}") from None
 
@@ -497,7 +506,7 @@ def _parse_index(index: bytes, header_end: int, index_offset: int,
     seen: set[str] = set()
     position = header_end
     for _ in range(count):
-        entry = _parse_record(cursor, position, index_offset, packed)
+        entry = _parse_record(cursor, position, index_offset, version)
         if entry.path in seen:
             raise _InvalidError(f"duplicate path {entry.path!r}")
         seen.add(entry.path)

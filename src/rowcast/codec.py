@@ -245,21 +245,23 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
 
 
 def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
-                 workers: int | None = None) -> list[Coded]:
+                 workers: int | None = None, compact: bool = True) -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8. `method` is the richest
     method allowed: with "adaptive", each image gets the tuning and feedback gains that
     shorten it (method "adaptive", or "tuned" when every gain is zero) if that saves more
     than its header takes; "tuned" tunes without gains (format versions 2 and 3); "model"
-    never tunes. Like decoding, a large batch is shared by single-threaded processes
-    (`workers.shares`); the bytes are the same for any split."""
+    never tunes. `compact` writes a gray image's header in its compact form (archive
+    format 5 on; `tuning.header_bytes`). Like decoding, a large batch is shared by
+    single-threaded processes (`workers.shares`); the bytes are the same for any split."""
     if method not in ("adaptive", "tuned", "model"):
         raise ValueError(f"no encoder for method {method!r}")
     parts = [images[a:b] for a, b in shares(len(images), workers)]
-    return [c for part in run_split(lambda part, _: _encode(engine, part, method), parts)
-            for c in part]
+    return [c for part in run_split(lambda part, _: _encode(engine, part, method, compact),
+                                    parts) for c in part]
 
 
-def _encode(engine: Engine, images: list[np.ndarray], method: str) -> list[Coded]:
+def _encode(engine: Engine, images: list[np.ndarray], method: str,
+            compact: bool = True) -> list[Coded]:
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -267,12 +269,13 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str) -> list[Coded
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes, method))
+            coded.append(_encode_one(out, rgb, planes, method, compact))
     return coded
 
 
 def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
-              method: str = "adaptive") -> tuple[Tune | None, Feedback | None]:
+              method: str = "adaptive",
+              compact: bool = True) -> tuple[Tune | None, Feedback | None]:
     """(the tuning that gives this image the shortest code, or None when it would not save
     the bytes of its header; its `Feedback` when it has feedback gains, else None): what
     `image_tables` needs for the encoder's tables. The search: scale offsets band by band,
@@ -338,7 +341,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
                                           p.ls8[:, :planes], values, residuals)
         saved += more
-    if saved <= 8 * tuning.HEADER_BYTES[tune.method] * LENGTH_ONE:
+    if saved <= 8 * tuning.header_bytes(tune.method, planes, compact) * LENGTH_ONE:
         return None, None
     return tune, near if tune.feedback else None
 
@@ -391,10 +394,11 @@ def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.nd
     return best, best_near, before - best_bits
 
 
-def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> Coded:
+def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
+                compact: bool) -> Coded:
     coder, bits = entropy.encoder(), 0.0
     base = base_prediction(rgb)
-    chosen, near = tuning_of(out, rgb, base, planes, method)
+    chosen, near = tuning_of(out, rgb, base, planes, method, compact)
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
@@ -407,17 +411,19 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str) -> C
     if chosen is None:
         return Coded(entropy.finish(coder), bits)
     gains = (chosen.gains, chosen.biases) if chosen.feedback else None
-    header = tuning.pack(chosen.offsets, chosen.couplings, gains)
+    header = tuning.pack(chosen.offsets, chosen.couplings, gains, planes == 1 and compact)
     return Coded(header + entropy.finish(coder), bits, chosen.method)
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
                  width: int, progress=None, trace=None, workers: int | None = None,
-                 methods: Sequence[str] | str = "model") -> np.ndarray:
+                 methods: Sequence[str] | str = "model", compact: bool = True) -> np.ndarray:
     """Decode same-sized images together; returns (B, P, H, W) uint8.
 
-    `methods` names each payload's method ("model" or "tuned"), or one for all: an untuned
-    image is a tuned one with zero offsets, so both kinds share a batch.
+    `methods` names each payload's method ("model", "tuned" or "adaptive"), or one for
+    all: an untuned image is a tuned one with zero offsets, and a tuned one an adaptive one
+    with zero gains, so all kinds share a batch. `compact`: a gray image's header is in its
+    compact form (archive format 5 on).
     A large batch is shared by single-threaded processes (`workers.shares`: `workers` of
     them if given), each decoding its images together. `progress`, if given, is
     called with the number of images of a part after each of its rows; `trace`, if given,
@@ -427,7 +433,7 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
     def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
-        return _decode(engine, *part, planes, height, width, report, trace)
+        return _decode(engine, *part, planes, height, width, report, trace, compact)
 
     cuts = shares(len(payloads), 1 if trace is not None else workers)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
@@ -440,7 +446,8 @@ def _models() -> entropy.Models:
     return entropy.Models(all_tables())
 
 
-def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
+def _split_tuning(payloads: list[bytes], methods: list[str], planes: int,
+                  compact: bool) -> tuple:
     """(coder words of each payload, the batch's Tune or None)."""
     if all(m == "model" for m in methods):
         return payloads, None
@@ -451,7 +458,7 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
     words = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
         if method in tuning.HEADER_BYTES:
-            size = tuning.HEADER_BYTES[method]
+            size = tuning.header_bytes(method, planes, compact)
             if len(payload) < size:
                 raise entropy.PayloadError("payload is shorter than its tuning header")
             try:
@@ -466,10 +473,10 @@ def _split_tuning(payloads: list[bytes], methods: list[str]) -> tuple:
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
-            height: int, width: int, progress, trace) -> np.ndarray:
+            height: int, width: int, progress, trace, compact: bool) -> np.ndarray:
     try:
-        return _decode_rows(engine, *_split_tuning(payloads, methods), planes, height, width,
-                            progress, trace)
+        return _decode_rows(engine, *_split_tuning(payloads, methods, planes, compact), planes,
+                            height, width, progress, trace)
     except AssertionError:  # constriction's word for data its models cannot have produced
         raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
                                    "or another model)") from None

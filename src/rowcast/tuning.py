@@ -28,6 +28,19 @@ SCALE_BYTES = fam.CHANNELS * (len(BANDS) + 1) // 2  # 3 channels x 8 bands x 4 b
 COUPLING_OFFSETS = np.arange(-32, 33, 4)  # tried for each coupling, in its 64ths
 # then G<-R, B<-R, B<-G as signed bytes, and a zero byte ("tuned") or the feedback gains
 HEADER_BYTES = {"tuned": SCALE_BYTES + 4, "adaptive": SCALE_BYTES + 6}
+# A gray image's header since archive format 5 holds only its one plane's fields: R's
+# scale offsets and, for "adaptive", R's scale and bias gains.
+GRAY_HEADER_BYTES = {"tuned": SCALE_BYTES // fam.CHANNELS,
+                     "adaptive": SCALE_BYTES // fam.CHANNELS + 1}
+
+
+def header_bytes(method: str, planes: int, compact: bool = True) -> int:
+    """The bytes of tuning ahead of a payload's coder words: none for "model"; for a gray
+    image (one plane) with `compact` (archive format 5 on) GRAY_HEADER_BYTES, else
+    HEADER_BYTES."""
+    if method not in HEADER_BYTES:
+        return 0
+    return (GRAY_HEADER_BYTES if planes == 1 and compact else HEADER_BYTES)[method]
 
 
 def band_of(levels: np.ndarray) -> np.ndarray:
@@ -70,20 +83,31 @@ def _signed_nibbles(raw: bytes) -> np.ndarray:
 
 
 def pack(offsets: np.ndarray, couplings: np.ndarray,
-         gains: tuple[np.ndarray, np.ndarray] | None = None) -> bytes:
+         gains: tuple[np.ndarray, np.ndarray] | None = None, gray: bool = False) -> bytes:
     """The header of method "tuned" (16 bytes: scale offsets (3, 8) as nibbles,
     channel-major, low nibble first; the coupling offsets (3,) as signed bytes; a zero
     byte), or with feedback gains (scale gains (3,), bias gains (3,)) of method "adaptive"
     (18 bytes: the same 15, then the scale gains 0..15 and the bias gains -8..7 as nibbles,
-    R, G, B each)."""
+    R, G, B each). With `gray`, a gray image's compact header: R's scale offsets (4
+    bytes), then for "adaptive" R's scale gain and bias gain (one byte, low nibble first)."""
+    if gray:
+        head = _nibbles(offsets[0])
+        return head if gains is None else head + _nibbles(np.array([gains[0][0], gains[1][0]]))
     head = _nibbles(offsets.reshape(-1)) + couplings.astype(np.int8).tobytes()
     return head + (b"\0" if gains is None else _nibbles(np.concatenate(gains)))
 
 
 def unpack(header: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """(scale offsets (3, 8), coupling offsets (3,), scale gains (3,), bias gains (3,))
-    from a header that `pack` wrote (gains zero in a 16-byte one); ValueError if a 16-byte
-    header's last byte is not zero."""
+    from a header that `pack` wrote, full or gray (its length tells which; what a header
+    lacks is zero); ValueError if a 16-byte header's last byte is not zero."""
+    if len(header) in GRAY_HEADER_BYTES.values():
+        offsets, zero = np.zeros((fam.CHANNELS, len(BANDS) + 1), np.int64), np.zeros(3, np.int64)
+        offsets[0] = _signed_nibbles(header[: GRAY_HEADER_BYTES["tuned"]])
+        gains, biases = zero.copy(), zero.copy()
+        if len(header) == GRAY_HEADER_BYTES["adaptive"]:
+            gains[0], biases[0] = _unsigned_nibbles(header[-1:])[0], _signed_nibbles(header[-1:])[1]
+        return offsets, zero, gains, biases
     if len(header) == HEADER_BYTES["tuned"] and header[-1]:
         raise ValueError("tuning header's reserved byte is not zero")
     offsets = _signed_nibbles(header[:SCALE_BYTES]).reshape(fam.CHANNELS, -1)
