@@ -235,7 +235,7 @@ def render(r: dict) -> str:
         "|---|---|---|",
         "| model cross-entropy (the floor), bpsp | "
         f"{ours['RGB']['cross_entropy_bpsp']:.4f} | {ours['L']['cross_entropy_bpsp']:.4f} |",
-        f"| payloads only (with their 16- or 18-byte tuning headers), bpsp | "
+        f"| payloads only (with their tuning headers: 16 or 18 bytes, gray 4 or 5), bpsp | "
         f"{ours['RGB']['payload_bpsp']:.4f} | "
         f"{ours['L']['payload_bpsp']:.4f} |",
         "| payload / cross-entropy | "
