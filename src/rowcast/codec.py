@@ -331,11 +331,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         biases, by_means = tuning.choose_gains(bias_bits, planes, feedback.BIASES)
         near = Feedback.of(tuned, values, residuals, shape, biases)
 
-        def scale_bits(c: int, k: np.ndarray) -> np.ndarray:
-            moves = level_moves(near.sums[:, c], c, k)
-            return bits(tuned, c, moves, near.means_moved[:, c]).sum(axis=1)
-
-        gains, by_scales = tuning.choose_gains(scale_bits, planes)
+        gains, by_scales = tuning.choose_gains(_scale_gain_cost(bits, tuned, near), planes)
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
         saved += by_means + by_scales
         tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
@@ -344,6 +340,17 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     if saved <= 8 * tuning.header_bytes(tune.method, planes, compact) * LENGTH_ONE:
         return None, None
     return tune, near if tune.feedback else None
+
+
+def _scale_gain_cost(bits, params: Params, near: Feedback):
+    """cost(c, k) for `tuning.choose_gains`: plane c's code length (K,) for K scale gains
+    k (K, 1), with `near`'s surprises and mean moves."""
+
+    def cost(c: int, k: np.ndarray) -> np.ndarray:
+        return bits(params, c, level_moves(near.sums[:, c], c, k),
+                    near.means_moved[:, c]).sum(axis=1)
+
+    return cost
 
 
 def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
@@ -381,12 +388,7 @@ def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.nd
     if trial_bits < best_bits:
         best, best_near, best_bits = trial, trial_near, trial_bits
         tp = pixel_params(raw, flat_base, trial)
-
-        def scale_bits(c: int, k: np.ndarray) -> np.ndarray:
-            moves = level_moves(trial_near.sums[:, c], c, k)
-            return bits(tp, c, moves, trial_near.means_moved[:, c]).sum(axis=1)
-
-        gains, _ = tuning.choose_gains(scale_bits, planes)
+        gains, _ = tuning.choose_gains(_scale_gain_cost(bits, tp, trial_near), planes)
         trial = Tune.of(offsets, tune.couplings, gains, tune.biases)
         trial_bits, trial_near = total(trial)
         if trial_bits < best_bits:

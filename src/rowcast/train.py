@@ -107,7 +107,7 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
     photos, cutouts, held = [], [], []
     own = None if cfg.held_out is None else Path(cfg.held_out).resolve()
     if own is not None:
-        held = [_rgba(path) for path in _images(own)]
+        held = [np.asarray(_rgba(path)) for path in _images(own)]
         if not held:
             raise SystemExit(f"{cfg.held_out}: no images to validate on")
     for path in _images(Path(cfg.data)):
@@ -115,11 +115,11 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
             continue
         rgba = _rgba(path)
         if own is None and path.name in cfg.validation:
-            held.append(rgba)
+            held.append(np.asarray(rgba))
         elif "cutouts" in path.parts:
-            cutouts += _pyramid(Image.fromarray(rgba), CUTOUT_SCALES, cfg.crop)
+            cutouts += _pyramid(rgba, CUTOUT_SCALES, cfg.crop)
         else:
-            photos += _pyramid(Image.fromarray(rgba).convert("RGB"), PHOTO_SCALES, cfg.crop)
+            photos += _pyramid(rgba.convert("RGB"), PHOTO_SCALES, cfg.crop)
     if not photos:
         raise SystemExit(f"{cfg.data}: no training photographs found")
     return photos, cutouts, held
@@ -129,9 +129,9 @@ def _images(folder: Path) -> list[Path]:
     return [p for p in sorted(folder.rglob("*")) if p.suffix.lower() in IMAGE_SUFFIXES]
 
 
-def _rgba(path: Path) -> np.ndarray:
+def _rgba(path: Path) -> Image.Image:
     with Image.open(path) as im:
-        return np.asarray(im.convert("RGBA"))
+        return im.convert("RGBA")
 
 
 def _random_crop(rng: np.random.Generator, img: np.ndarray, c: int) -> np.ndarray:
