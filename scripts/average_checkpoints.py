@@ -12,30 +12,29 @@ import json
 from pathlib import Path
 
 import typer
-from safetensors.torch import load_file, save_file
+from safetensors.torch import save_file
 
 from rowcast.train import evaluate, load_checkpoint, load_pools, saved_config, validation_tiles
 
 
 def main(out: Path, runs: list[Path]) -> None:
     """Write OUT from the mean of the checkpoints in RUNS; print their validation figures."""
-    weights = [load_file(str(run / "checkpoint.safetensors")) for run in runs]
+    loaded = [load_checkpoint(run) for run in runs]  # (model, record): each file read once
+    weights = [model.state_dict() for model, _ in loaded]
     mean = {k: sum(w[k] for w in weights) / len(weights) for k in weights[0]}
-    meta = json.loads((runs[-1] / "checkpoint.json").read_text())
-    steps = [json.loads((run / "checkpoint.json").read_text())["state"]["history"][-1]["steps"]
-             for run in runs]
+    meta = loaded[-1][1]
+    steps = [record["state"]["history"][-1]["steps"] for _, record in loaded]
     meta["state"]["history"].append({**meta["state"]["history"][-1], "averaged_steps": steps})
     meta["state"]["commands"].append(
         "python scripts/average_checkpoints.py " + " ".join(map(str, [out, *runs])))
     out.mkdir(parents=True, exist_ok=True)
-    save_file(mean, str(out / "checkpoint.safetensors"))
+    save_file({k: v.contiguous() for k, v in mean.items()}, str(out / "checkpoint.safetensors"))
     (out / "checkpoint.json").write_text(json.dumps(meta, indent=2))
+    averaged, _ = load_checkpoint(out)
     cfg = saved_config(meta)
     tiles = validation_tiles(cfg, load_pools(cfg)[2])
-    for run in [*runs, out]:
-        model, _ = load_checkpoint(run)
-        print(f"{run}: validation quantised {evaluate(model, tiles, True):.4f} bits per subpixel")
-
+    for name, (model, _) in zip([*runs, out], [*loaded, (averaged, meta)], strict=True):
+        print(f"{name}: validation quantised {evaluate(model, tiles, True):.4f} bits per subpixel")
 
 if __name__ == "__main__":
     typer.run(main)
