@@ -15,10 +15,14 @@ from rowcast.tables import (
     WIDTH,
     all_tables,
     code_lengths,
+    count_index,
     exact_logistic_cdf,
     logistic_cdf,
     logistic_tables,
     mixture_tables,
+    symbol_columns,
+    symbol_counts,
+    symbol_lengths,
     table_rows,
 )
 
@@ -131,6 +135,19 @@ def test_two_component_tables_are_the_weighted_sum_or_a_pure_table():
     assert np.array_equal(tables.astype(np.int64), want) and tables.dtype == np.float32
     mixed = (weight > 0) & (weight < fam.WEIGHT_ONE)
     assert np.all(tables[mixed].sum(1, dtype=np.float64) == fam.WEIGHT_ONE * TABLE_TOTAL)
+
+
+def test_the_searchs_count_lookup_is_every_table_entry():
+    """The tuning search reads counts from the compact `symbol_counts` layout: at every
+    (level, mean) of the grid and for all 256 values it gives the entry of `all_tables()`,
+    and `symbol_lengths` gives that entry's code length."""
+    mu4 = np.repeat(np.arange(fam.MU_LO, fam.MU_HI + 1), LEVELS)
+    ls8 = np.tile(np.arange(fam.LS_LO, fam.LS_HI + 1), fam.MU_HI - fam.MU_LO + 1)
+    rows = all_tables()[table_rows(mu4, ls8)].astype(np.int64)  # float32 counts, exact
+    for x in range(256):
+        at = count_index(mu4, ls8, symbol_columns(np.full(mu4.shape, x)))
+        assert np.array_equal(symbol_counts()[at], rows[:, x]), x
+        assert np.array_equal(symbol_lengths()[at], code_lengths()[rows[:, x]]), x
 
 
 def test_the_searchs_code_lengths_are_the_rounded_logarithms_on_every_platform():

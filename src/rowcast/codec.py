@@ -25,7 +25,11 @@ from rowcast.tables import (
     TABLE_TOTAL,
     all_tables,
     code_lengths,
+    count_index,
     mixture_tables,
+    symbol_columns,
+    symbol_counts,
+    symbol_lengths,
     table_rows,
 )
 from rowcast.workers import run_split, shares
@@ -162,19 +166,28 @@ def _on_grid(mu4: np.ndarray) -> np.ndarray:
     return np.minimum(np.maximum(mu4, fam.MU_LO), fam.MU_HI)
 
 
+def plane_grid(p: Params, c: int, residuals: np.ndarray,
+               levels_moved: np.ndarray | None = None,
+               means_moved: np.ndarray | int = 0) -> tuple:
+    """((means, levels) of the first component, of the second or None) for plane c (N,),
+    with the levels moved by `levels_moved` ((N,): each its own), or (K, N) moved by each of
+    K offsets (K, 1) or K moves (K, N), and the means by `means_moved` ((N,) or (K, N))."""
+    move = coupling_move(p.couplings, c, residuals) + means_moved
+
+    def grid(means: np.ndarray, ls8: np.ndarray) -> tuple:
+        levels = ls8[:, c] if levels_moved is None else tuning.apply(ls8[:, c], levels_moved)
+        return _on_grid(means[:, c] + move), levels
+
+    return grid(p.means, p.ls8), None if p.weight is None else grid(p.means_b, p.ls8_b)
+
+
 def plane_rows(p: Params, c: int, residuals: np.ndarray,
                levels_moved: np.ndarray | None = None,
                means_moved: np.ndarray | int = 0) -> tuple:
-    """(table rows of the first component, of the second or None) for plane c (N,), with
-    the levels moved by `levels_moved` ((N,): each its own), or (K, N) moved by each of K
-    offsets (K, 1) or K moves (K, N), and the means by `means_moved` ((N,) or (K, N))."""
-    move = coupling_move(p.couplings, c, residuals) + means_moved
-
-    def rows(means: np.ndarray, ls8: np.ndarray) -> np.ndarray:
-        levels = ls8[:, c] if levels_moved is None else tuning.apply(ls8[:, c], levels_moved)
-        return table_rows(_on_grid(means[:, c] + move), levels)
-
-    return rows(p.means, p.ls8), None if p.weight is None else rows(p.means_b, p.ls8_b)
+    """(table rows of the first component, of the second or None): `plane_grid` as rows
+    of `all_tables()`."""
+    first, second = plane_grid(p, c, residuals, levels_moved, means_moved)
+    return table_rows(*first), None if second is None else table_rows(*second)
 
 
 @dataclass(frozen=True)
@@ -288,8 +301,8 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     raw = out.reshape(-1, out.shape[-1])
     p = pixel_params(raw, flat_base)
     residuals = known - flat_base
-    flat = all_tables().reshape(-1)
-    lengths = code_lengths()
+    columns = [symbol_columns(known[:, c]) for c in range(planes)]
+    lengths, counts = symbol_lengths(), symbol_counts()
     mixed_lengths = None if raw.shape[1] == fam.OUTPUTS else code_lengths(fam.WEIGHT_ONE)
 
     def bits(p: Params, c: int, d: np.ndarray | None = None,
@@ -297,13 +310,12 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         """Code lengths in 1/LENGTH_ONE bit (exact integers: `code_lengths`) of plane c's
         subpixels (N,), or (K, N) with the levels moved by each of K offsets d (K, 1) or
         moves (K, N), or the means by moves m."""
-        rows, rows_b = plane_rows(p, c, residuals, d, m)
-        count = flat[rows * 256 + known[:, c]].astype(np.int64)
-        if rows_b is None:
-            return lengths[count]
+        first, second = plane_grid(p, c, residuals, d, m)
+        if second is None:
+            return lengths[count_index(*first, columns[c])]
         w = p.weight[:, c]  # w x a + (64 - w) x b: a pure table's count times 64 too
-        return mixed_lengths[w * count + (fam.WEIGHT_ONE - w) * flat[
-            rows_b * 256 + known[:, c]].astype(np.int64)]
+        return mixed_lengths[w * counts[count_index(*first, columns[c])]
+                             + (fam.WEIGHT_ONE - w) * counts[count_index(*second, columns[c])]]
 
     offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes])
     tune, near = Tune.of(offsets, np.zeros(3, np.int64)), None
