@@ -1,10 +1,14 @@
 """Specification of training and export: a short run on a user's own directory yields a model
 file that loads, codes exactly, and records its validation figures."""
 
+import shlex
+
 import numpy as np
 import pytest
 import torch
+import typer
 from PIL import Image
+from typer.testing import CliRunner
 
 from rowcast import family as fam
 from rowcast.codec import decode_batch, encode_batch
@@ -45,6 +49,24 @@ def test_a_sensor_frame_is_faint_noisy_and_sits_on_a_black_level():
     assert white.mean() <= 0.5 * 255 + 27 + 3
     assert command(Config("d", "o", sensor_fraction=0.1)).endswith(" --sensor 0.1")
     assert "--sensor" not in command(Config("d", "o"))
+
+
+@pytest.mark.parametrize("options", [
+    "--minutes 3",
+    "--minutes 2.5 --lr 0.0007 --batch 16 --seed 11 --sensor 0.1",
+    "--minutes 1 --resume default --lr 0.0005 --seed 3 --hidden 256 --left 6 --activity",
+])
+def test_a_runs_recorded_command_line_runs_that_run_again(monkeypatch, options):
+    """What a checkpoint records as its command (`command`) gives, run again through the
+    command line, the same run settings: learning rate, batch, seed and sizes included."""
+    seen = []
+    monkeypatch.setattr("rowcast.train.train", lambda cfg, log: seen.append(cfg))
+    app = typer.Typer()
+    app.command()(main)
+    for args in (f"d o {options}", None):
+        args = args or shlex.join(shlex.split(command(seen[0]))[3:])
+        assert CliRunner().invoke(app, shlex.split(args)).exit_code == 0, args
+    assert seen[0] == seen[1], command(seen[0])
 
 
 @pytest.mark.parametrize("quant", [False, True])

@@ -64,7 +64,10 @@ class Config:
 
 def command(cfg: Config) -> str:
     """The command line that runs `cfg`."""
-    extra = f" --resume {cfg.resume} --lr {cfg.lr:g}" if cfg.resume else ""
+    extra = f" --resume {cfg.resume}" if cfg.resume else ""
+    extra += f" --lr {cfg.lr:g}" * bool(cfg.resume or cfg.lr != Config.lr)
+    extra += f" --batch {cfg.batch}" * (cfg.batch != Config.batch)
+    extra += f" --seed {cfg.seed}" * (cfg.seed != Config.seed)
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     extra += f" --components {cfg.components}" * (cfg.components > 1)
     extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
