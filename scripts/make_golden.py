@@ -11,6 +11,9 @@
                                             # archive came out unchanged, so it has none)
     python scripts/make_golden.py compact   # gray/gate.png, golden-compact.rowcast (0.5:
                                             # format 5, a gray entry's compact header)
+    python scripts/make_golden.py streamed  # golden-streamed.rowcast and
+                                            # golden-mixture-streamed.rowcast (0.8: format
+                                            # 6, tuning range-coded, endings trimmed)
 
 Each part ran once; the files are committed, and tests check that today's code still
 decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
@@ -103,6 +106,14 @@ def compact() -> None:
                             GOLDEN / "golden-compact.rowcast", model=GOLDEN / "tiny.safetensors"))
 
 
+def streamed() -> None:
+    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"],
+                            GOLDEN / "golden-streamed.rowcast", model=GOLDEN / "tiny.safetensors"))
+    report(rowcast.compress([GOLDEN / "tuned", GOLDEN / "gray"],
+                            GOLDEN / "golden-mixture-streamed.rowcast",
+                            model=GOLDEN / "tiny-mixture.safetensors"))
+
+
 def report(summary) -> None:
     for e in summary.entries:
         print(e["path"], e["method"], e["bytes"])
@@ -110,4 +121,5 @@ def report(summary) -> None:
 
 if __name__ == "__main__":
     {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed,
-     "adaptive": adaptive, "retuned": retuned, "compact": compact}[sys.argv[1]]()
+     "adaptive": adaptive, "retuned": retuned, "compact": compact,
+     "streamed": streamed}[sys.argv[1]]()

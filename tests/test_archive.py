@@ -21,6 +21,7 @@ from rowcast.archive import (
     IndexEntry,
     ModelIdentity,
     normalise_path,
+    payload_layout,
     read_index,
     read_payload,
     write_archive,
@@ -523,7 +524,7 @@ def test_every_single_byte_flip_is_caught_or_harmless(tmp_path: Path) -> None:
 def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) -> None:
     """Version 3 holds the same entries, offsets and payloads as version 2, with an index of
     variable-length numbers, no offsets, deflated by zlib (the index bytes are checked
-    against an independent packing of FORMAT.md's layout); version 5, what writers write
+    against an independent packing of FORMAT.md's layout); version 6, what writers write
     unless told otherwise, lays them out as version 3 does."""
     entries = SAMPLE + [stored(f"orchard/cam{i:02d}/2026-11-30T06-00.png", "L", 2, 2, i)
                         for i in range(12)]
@@ -533,9 +534,9 @@ def test_version_3_packs_the_index_and_lists_the_same_entries(tmp_path: Path) ->
     new = tmp_path / "v3" / "sample.rca"
     write_archive(new, MODEL, entries, version=3)
     assert struct.unpack("<H", new.read_bytes()[8:10]) == (3,)
-    newest = tmp_path / "v5.rca"
+    newest = tmp_path / "v6.rca"
     write_archive(newest, MODEL, entries)
-    assert struct.unpack("<H", newest.read_bytes()[8:10]) == (5,)
+    assert struct.unpack("<H", newest.read_bytes()[8:10]) == (6,)
     assert read_index(newest) == read_index(new)
     four, three = newest.read_bytes(), new.read_bytes()
     (at4, size4), (at3, size3) = locate_index(four), locate_index(three)
@@ -618,3 +619,20 @@ def test_a_gray_entrys_tuning_header_is_compact_from_version_5(tmp_path: Path) -
     with pytest.raises(ArchiveError, match="5-byte tuning header"):
         write_archive(tmp_path / "full.rca", MODEL, full, version=5)
     assert not (tmp_path / "full.rca").exists()
+
+
+def test_a_coded_payload_is_any_number_of_bytes_from_version_6(tmp_path: Path) -> None:
+    """From format version 6 a coded payload is one range code, its tuning inside and its
+    ending trimmed to whole bytes: any length is valid (even none: a code of zeros), while
+    versions before 6 refuse what is not whole 32-bit words after the header. The reader
+    records version 6, which fixes the layout (`payload_layout`)."""
+    odd = [Entry("g.png", "L", 2, 2, "tuned", bytes(32), b"\1" * 3),
+           Entry("a.png", "RGB", 2, 2, "adaptive", bytes(32), b"\1" * 7),
+           Entry("m.png", "RGB", 2, 2, "model", bytes(32), b"")]
+    write_archive(tmp_path / "v6.rca", MODEL, odd)
+    _, entries = read_index(tmp_path / "v6.rca")
+    assert [(e.length, e.version) for e in entries] == [(3, 6), (7, 6), (0, 6)]
+    assert [payload_layout(v) for v in (1, 4, 5, 6)] == ["full", "full", "compact", "streamed"]
+    with pytest.raises(ArchiveError, match="not whole 32-bit words"):
+        write_archive(tmp_path / "v5.rca", MODEL, odd, version=5)
+    assert not (tmp_path / "v5.rca").exists()

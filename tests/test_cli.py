@@ -845,7 +845,7 @@ def test_api_compress_writes_an_older_format_version_for_older_readers(
     """version=3 and 2 tune without surprise gains (rowcast 0.3 and 0.2 have no
     `adaptive`), version=1 codes without tuning (rowcast 0.1 had no `tuned`); the same
     pixels come back from each, and versions no reader knows are usage errors."""
-    for version in (5, 4, 3, 2, 1):
+    for version in (6, 5, 4, 3, 2, 1):
         dest = tmp_path / f"v{version}.rca"
         rowcast.compress([made.photos], dest, model=TINY, version=version)
         assert dest.read_bytes()[8:10] == bytes([version, 0])
@@ -853,6 +853,6 @@ def test_api_compress_writes_an_older_format_version_for_older_readers(
         assert methods <= VERSION_METHODS[version]
         assert bool(methods & {"tuned", "adaptive"}) == (version > 1)
         assert rowcast.verify(dest, against=made.photos, model=TINY).ok
-    with pytest.raises(rowcast.UsageError, match="cannot write format version 6"):
-        rowcast.compress([made.photos], tmp_path / "v6.rca", model=TINY, version=6)
-    assert not (tmp_path / "v6.rca").exists()
+    with pytest.raises(rowcast.UsageError, match="cannot write format version 7"):
+        rowcast.compress([made.photos], tmp_path / "v7.rca", model=TINY, version=7)
+    assert not (tmp_path / "v7.rca").exists()

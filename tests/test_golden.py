@@ -17,6 +17,7 @@ from PIL import Image
 import rowcast
 from rowcast import family as fam
 from rowcast.archive import read_payload
+from rowcast.codec import open_payloads
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
 from rowcast.tuning import HEADER_BYTES, unpack
@@ -125,21 +126,29 @@ def test_the_adaptive_golden_archive_of_0_4_0_still_decodes():
         GOLDEN / "golden-retuned.rowcast", sky[1])
 
 
-def test_compact_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
-    """Format version 5: a gray entry's tuning header holds its one plane's fields alone
-    (4 bytes, or 5 with its gains); decoded and re-encoded byte for byte by the default
-    writer. Written as format 4, the same gray images carry the full 18-byte header ahead
-    of the same coder words, with the same tuning in it."""
-    archive = GOLDEN / "golden-compact.rowcast"
-    decoded = dict(rowcast.decode_entries(archive, model=TINY))
+def decoded_as_committed(archive: Path, model: Path) -> dict:
+    """The entries of a golden archive of format 5 or 6, each checked against the committed
+    image of its name."""
     folders = {"leaf.png": "images", "orchard.png": "images", "sky.png": "tuned",
                "gate.png": "gray"}
+    decoded = dict(rowcast.decode_entries(archive, model=model))
     for entry, planes in decoded.items():
         original = np.asarray(Image.open(GOLDEN / folders[entry.path] / entry.path))
         expected = original[None] if original.ndim == 2 else original.transpose(2, 0, 1)
         assert np.array_equal(planes, expected)
+    return decoded
+
+
+def test_compact_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_path):
+    """Format version 5: a gray entry's tuning header holds its one plane's fields alone
+    (4 bytes, or 5 with its gains); decoded, and re-encoded byte for byte in format
+    version 5. Written as format 4, the same gray images carry the full 18-byte header ahead
+    of the same coder words, with the same tuning in it."""
+    archive = GOLDEN / "golden-compact.rowcast"
+    decoded = decoded_as_committed(archive, TINY)
     out = tmp_path / "again.rowcast"
-    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"], out, model=TINY)
+    rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"], out, model=TINY,
+                     version=5)
     assert out.read_bytes() == archive.read_bytes()
     older = tmp_path / "v4.rowcast"
     rowcast.compress([GOLDEN / "gray"], older, model=TINY, version=4)
@@ -153,3 +162,27 @@ def test_compact_golden_archive_decodes_and_re_encodes_to_the_same_bytes(tmp_pat
         assert np.array_equal(a, b)
     _, _, gains, biases = tuning[0]
     assert gains[0] and biases[0] < 0  # a negative nibble survives the compact byte
+
+
+@pytest.mark.parametrize(("archive", "model", "folders"), [
+    ("golden-streamed.rowcast", TINY, ("images", "tuned", "gray")),
+    ("golden-mixture-streamed.rowcast", GOLDEN / "tiny-mixture.safetensors", ("tuned", "gray")),
+])
+def test_streamed_golden_archives_decode_and_re_encode_to_the_same_bytes(tmp_path, archive,
+                                                                          model, folders):
+    """Format version 6 (tuning range-coded ahead of the pixels, endings trimmed), with one
+    and two components, RGB and gray: decoded, and re-encoded byte for byte by the default
+    writer. Its payloads are shorter than format 5's of the same images."""
+    for entry, planes in decoded_as_committed(GOLDEN / archive, model).items():
+        assert entry.method == ("model" if entry.path == "orchard.png" else "adaptive")
+        if entry.path in ("sky.png", "gate.png"):  # the fields decode to nonzero gains
+            channels = len(planes)
+            _, tune = open_payloads([read_payload(GOLDEN / archive, entry)], [entry.method],
+                                    channels, "streamed")
+            assert tune.gains[0, :channels].all() and tune.biases[0, :channels].all()
+    out, older = tmp_path / "again.rowcast", tmp_path / "v5.rowcast"
+    rowcast.compress([GOLDEN / f for f in folders], out, model=model)
+    assert out.read_bytes() == (GOLDEN / archive).read_bytes()
+    rowcast.compress([GOLDEN / f for f in folders], older, model=model, version=5)
+    new, old = rowcast.read_index(out)[1], rowcast.read_index(older)[1]
+    assert sum(e.length for e in new) < sum(e.length for e in old)

@@ -6,6 +6,7 @@ import numpy as np
 
 from rowcast import entropy
 from rowcast import family as fam
+from rowcast.entropy import ending_word
 from rowcast.tables import (
     CDF_ONE,
     D_MIN,
@@ -179,3 +180,53 @@ def test_summed_code_lengths_are_the_cross_entropy_to_within_rounding():
     counts = tables[np.arange(4096), symbols].astype(np.int64)
     bits = entropy.cross_entropy_bits(symbols, tables, total=TABLE_TOTAL)
     assert abs(code_lengths()[counts].sum() / LENGTH_ONE - bits) <= 4096 * 0.5 / LENGTH_ONE
+
+
+def test_a_trimmed_code_decodes_the_same_and_is_never_longer():
+    """Format 6 ends a code with the last word that has the most trailing zero bits inside
+    the coder's final interval, written big-endian with its trailing zero bytes dropped; the
+    decoder reads zeros past the end, so every symbol comes back (random tables, lengths and
+    skews, with constriction's own little-endian words as the reference). On average the
+    ending saves more than a byte, and a trimmed code never ends in a zero byte."""
+    rng = np.random.default_rng(12)
+    saved = []
+    for trial in range(400):
+        n = int(rng.integers(1, 200))
+        tables = rng.integers(1, 3000, (n, 256)).astype(np.float32)
+        if trial % 2:
+            tables[:, 0] = 1e6  # near-certain symbols: a short code, most of it the ending
+        p = tables.astype(np.float64) / tables.sum(axis=1, keepdims=True)
+        symbols = np.array([rng.choice(256, p=row) for row in p])
+        coder = entropy.encoder()
+        entropy.encode(coder, symbols, tables)
+        full, trimmed = entropy.finish(coder, trimmed=False), entropy.finish(coder)
+        assert not trimmed.endswith(b"\0")
+        assert len(trimmed) <= len(full)
+        for payload, flag in ((full, False), (trimmed, True)):
+            decoded = entropy.decoder(payload, trimmed=flag).decode(entropy.FAMILY, tables)
+            assert decoded.tolist() == symbols.tolist()
+        saved.append(len(full) - len(trimmed))
+    assert np.mean(saved) > 1
+
+
+def test_theending_word_has_the_most_trailing_zeros_in_the_interval():
+    """`ending_word` picks, among the words w with w * 2**32 in [lower, lower + width) and
+    below 2**64, one with the most trailing zero bits (checked by search over small
+    intervals); None when no word fits without a carry."""
+    rng = np.random.default_rng(13)
+
+    def zeros(w: int) -> int:
+        return 64 if w == 0 else (w & -w).bit_length() - 1
+
+    for _ in range(3000):
+        lower = int(rng.integers(0, 2**63)) * 2 + int(rng.integers(0, 2))
+        width = int(rng.integers(2**32, 2**32 * 3000))
+        first, last = -(-lower >> 32), (min(lower + width, 2**64) - 1) >> 32
+        word = ending_word(lower, width)
+        if first > last:
+            assert word is None
+            continue
+        assert first <= word <= last
+        assert zeros(word) == max(zeros(w) for w in range(first, last + 1))
+    assert ending_word(2**64 - 2**31, 2**32) is None  # only 2**64 itself: a carry
+    assert ending_word(0, 2**64 - 1) == 0

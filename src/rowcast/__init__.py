@@ -5,4 +5,4 @@ from rowcast.errors import DataError, RowcastError, UsageError
 
 __all__ = ["compress", "decompress", "verify", "read_index", "decode_entries",
            "RowcastError", "DataError", "UsageError"]
-__version__ = "0.7.0"
+__version__ = "0.8.0"

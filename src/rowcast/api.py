@@ -114,7 +114,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
 
     With `tune` (the default) each image may carry its own tuning (`tuning`) and feedback
     gains (`feedback`). `version` is the format version to write: the newest unless readers
-    of an older rowcast need 4 (rowcast 0.4; gray images' tuning headers in full), 3
+    of an older rowcast need 5 (rowcast 0.5 to 0.7; tuning in headers of whole bytes), 4
+    (rowcast 0.4; gray images' tuning headers in full), 3
     (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1 (rowcast 0.1; it has no
     tuning, so none is done).
 
@@ -161,7 +162,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                 for members in by_shape.values():
                     images = [group[j][1] for j in members]
                     coded.update(zip(members, codec.encode_batch(
-                        engine, images, method, compact=version >= archive.COMPACT_FROM),
+                        engine, images, method, layout=archive.payload_layout(version)),
                         strict=True))
                 for j, (name_j, planes_j, mode_j) in enumerate(group):
                     yield name_j, planes_j, mode_j, coded[j]
@@ -242,7 +243,7 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
                     decoded = codec.decode_batch(engine, payloads, planes, height, width,
                                                  progress=progress,
                                                  methods=[e.method for e in part],
-                                                 compact=_compact(part[0]))
+                                                 layout=_layout(part[0]))
                 except (PayloadError, ValueError, RuntimeError) as exc:
                     raise _undecodable(src, engine, part, payloads, planes, exc) from None
             for e, planes_out in zip(part, decoded, strict=True):
@@ -258,16 +259,16 @@ def _undecodable(src: Path, engine: Engine, part: list[IndexEntry], payloads: li
     for e, payload in zip(part, payloads, strict=True):
         try:
             codec.decode_batch(engine, [payload], planes, e.height, e.width, workers=1,
-                               methods=[e.method], compact=_compact(e))
+                               methods=[e.method], layout=_layout(e))
         except (PayloadError, ValueError, RuntimeError) as exc:
             return DataError(f"{src}: cannot decode {e.path} ({exc})")
     names = ", ".join(e.path for e in part)
     return DataError(f"{src}: cannot decode {names} ({batch_error})")
 
 
-def _compact(entry: IndexEntry) -> bool:
-    """Whether a gray entry's tuning header is in its compact form (format 5 on)."""
-    return entry.version >= archive.COMPACT_FROM
+def _layout(entry: IndexEntry) -> str:
+    """How an entry's payload carries its tuning, by its archive's format version."""
+    return archive.payload_layout(entry.version)
 
 
 def _payload(src: Path, entry: IndexEntry) -> bytes:

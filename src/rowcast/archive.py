@@ -21,7 +21,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 MAGIC = b"ROWCAST\xe5"
-VERSION = 5  # what writers write unless told otherwise
+VERSION = 6  # what writers write unless told otherwise
 END_MARK = b"RCIX"
 
 MODES: dict[str, int] = {"L": 1, "RGB": 2}
@@ -31,12 +31,15 @@ _BYTES_PER_PIXEL: dict[str, int] = {"L": 1, "RGB": 3}
 _MODE_NAMES: dict[int, str] = {code: name for name, code in MODES.items()}
 _METHOD_NAMES: dict[int, str] = {code: name for name, code in METHODS.items()}
 # Version 2 added method 2; version 3 packed the index; version 4 added method 3;
-# version 5 gave gray entries a compact tuning header.
+# version 5 gave gray entries a compact tuning header; version 6 range-codes the tuning
+# and trims the coder's ending.
 VERSION_METHODS: dict[int, frozenset[str]] = {
     1: frozenset({"stored", "model"}), 2: frozenset({"stored", "model", "tuned"}),
-    3: frozenset({"stored", "model", "tuned"}), 4: frozenset(METHODS), 5: frozenset(METHODS)}
+    3: frozenset({"stored", "model", "tuned"}), 4: frozenset(METHODS), 5: frozenset(METHODS),
+    6: frozenset(METHODS)}
 PACKED_FROM = 3  # the first version with a packed index
 COMPACT_FROM = 5  # the first version whose gray entries have compact tuning headers
+STREAMED_FROM = 6  # the first version whose payloads are one trimmed code, tuning inside
 
 _PREFIX = struct.Struct("<8sH")  # magic, version
 _HEADER = struct.Struct("<8sHH32sB")  # magic, version, flags, model SHA-256, model name length
@@ -171,18 +174,26 @@ def _check_dimensions(width: int, height: int) -> None:
 
 def _check_payload_length(mode: str, method: str, width: int, height: int, length: int,
                           version: int) -> None:
-    """Refuse payload lengths that cannot be right for the method (raw size, whole words)."""
+    """Refuse payload lengths that cannot be right for the method (raw size; before
+    version 6, whole words after the tuning header; from 6 on any length is a code)."""
     if method == "stored":
         expected = width * height * _BYTES_PER_PIXEL[mode]
         if length != expected:
             raise _InvalidError(f"stored payload is {length} bytes, expected {expected}")
-    else:
+    elif version < STREAMED_FROM:
         gray = mode == "L" and version >= COMPACT_FROM
         header = (_GRAY_TUNING_BYTES if gray else _TUNING_BYTES)[method]
         if length < header or (length - header) % _WORD_BYTES:
             after = f" after its {header}-byte tuning header" if header else ""
             raise _InvalidError(f"{method} payload is {length} bytes, not whole 32-bit "
                                 f"words{after}")
+
+
+def payload_layout(version: int) -> str:
+    """How the coded payloads of a format version carry their tuning (`codec.LAYOUTS`)."""
+    if version >= STREAMED_FROM:
+        return "streamed"
+    return "compact" if version >= COMPACT_FROM else "full"
 
 
 def _check_entry(entry: Entry, version: int) -> str:

@@ -85,8 +85,8 @@ def compress(
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
     format_version: Annotated[int, typer.Option(
-        "--format-version", help="Archive format to write: 5, or 4, 3, 2, 1 so that "
-        "rowcast 0.4, 0.3, 0.2, 0.1 can read it (larger archives).")] = archive.VERSION,
+        "--format-version", help="Archive format to write: 6, or 5, 4, 3, 2, 1 so "
+        "that rowcast 0.7, 0.4, 0.3, 0.2, 0.1 can read it (larger archives).")] = archive.VERSION,
 ) -> None:
     """Compress images into one archive."""
     with _guard(threads):

@@ -39,15 +39,23 @@ PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (en
 # 64-px thumbnails 2 a pass is 22-25% faster than 8 a pass, measured) and memory bounded
 
 
+# How a payload carries its tuning: "full" headers of 16 or 18 bytes ahead of the coder's
+# little-endian words (archive formats 1 to 4); "compact" headers for gray images (format
+# 5); "streamed": the tuning fields range-coded ahead of the pixels under fixed priors
+# (`tuning.fields`) and the coder's ending trimmed (`entropy.finish`), format 6 on.
+LAYOUTS = ("full", "compact", "streamed")
+
+
 @dataclass(frozen=True)
 class Coded:
-    """One image's payload, its method ("adaptive" or "tuned": 18 or 16 bytes of tuning,
-    then the coder's words; "model": the words alone) and the model's cross-entropy for it,
-    in bits."""
+    """One image's payload, its method ("adaptive" or "tuned": the coder's code with its
+    tuning, "model": without), the model's cross-entropy for its pixels and what its tuning
+    costs (`header_length`), in bits: the payload's floor is their sum."""
 
     payload: bytes
     cross_entropy: float
     method: str = "model"
+    tuning_bits: float = 0.0
 
 
 def base_at(row: np.ndarray, above: tuple | None, x: int) -> np.ndarray:
@@ -258,23 +266,25 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
 
 
 def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
-                 workers: int | None = None, compact: bool = True) -> list[Coded]:
+                 workers: int | None = None, layout: str = "streamed") -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8. `method` is the richest
     method allowed: with "adaptive", each image gets the tuning and feedback gains that
     shorten it (method "adaptive", or "tuned" when every gain is zero) if that saves more
-    than its header takes; "tuned" tunes without gains (format versions 2 and 3); "model"
-    never tunes. `compact` writes a gray image's header in its compact form (archive
-    format 5 on; `tuning.header_bytes`). Like decoding, a large batch is shared by
-    single-threaded processes (`workers.shares`); the bytes are the same for any split."""
+    than it costs; "tuned" tunes without gains (format versions 2 and 3); "model" never
+    tunes. `layout` is how the payload carries its tuning (`LAYOUTS`). Like decoding, a
+    large batch is shared by single-threaded processes (`workers.shares`); the bytes are the
+    same for any split."""
     if method not in ("adaptive", "tuned", "model"):
         raise ValueError(f"no encoder for method {method!r}")
+    if layout not in LAYOUTS:
+        raise ValueError(f"no payload layout {layout!r}")
     parts = [images[a:b] for a, b in shares(len(images), workers)]
-    return [c for part in run_split(lambda part, _: _encode(engine, part, method, compact),
+    return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout),
                                     parts) for c in part]
 
 
 def _encode(engine: Engine, images: list[np.ndarray], method: str,
-            compact: bool = True) -> list[Coded]:
+            layout: str) -> list[Coded]:
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -282,18 +292,19 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str,
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes, method, compact))
+            coded.append(_encode_one(out, rgb, planes, method, layout))
     return coded
 
 
 def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
               method: str = "adaptive",
-              compact: bool = True) -> tuple[Tune | None, Feedback | None]:
+              layout: str = "streamed") -> tuple[Tune | None, Feedback | None]:
     """(the tuning that gives this image the shortest code, or None when it would not save
-    the bytes of its header; its `Feedback` when it has feedback gains, else None): what
-    `image_tables` needs for the encoder's tables. The search: scale offsets band by band,
-    then coupling offsets, then with method "adaptive" the bias gains, the scale gains, and
-    the scale offsets and scale gains once more (`_offsets_again`)."""
+    what it costs in the payload's `layout` (`header_length`); its `Feedback` when it has
+    feedback gains, else None): what `image_tables` needs for the encoder's tables. The
+    search: scale offsets band by band, then coupling offsets, then with method "adaptive"
+    the bias gains, the scale gains, and the scale offsets and scale gains once more
+    (`_offsets_again`)."""
     if method == "model":
         return None, None
     known = rgb.reshape(3, -1).T.astype(np.int64)
@@ -317,7 +328,9 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         return mixed_lengths[w * counts[count_index(*first, columns[c])]
                              + (fam.WEIGHT_ONE - w) * counts[count_index(*second, columns[c])]]
 
-    offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes])
+    price = _prices(layout)
+    offsets, saved = tuning.choose(lambda c, d: bits(p, c, d), p.ls8[:, :planes],
+                                   price("offsets"))
     tune, near = Tune.of(offsets, np.zeros(3, np.int64)), None
     if planes == 3:
         tuned = pixel_params(raw, flat_base, tune)
@@ -330,7 +343,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
                 trial.couplings[:, j] = tuning.couple(tuned.couplings[:, j], moves[j])
             return float(bits(trial, plane).sum())
 
-        couplings, more = tuning.choose_couplings(plane_bits)
+        couplings, more = tuning.choose_couplings(plane_bits, price("couplings"))
         tune, saved = Tune.of(offsets, couplings), saved + more
     if method == "adaptive":  # bias gains first: surprises are measured from moved means
         tuned = pixel_params(raw, flat_base, tune)
@@ -340,18 +353,41 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         def bias_bits(c: int, b: np.ndarray) -> np.ndarray:
             return bits(tuned, c, None, feedback.mean_moves(errors[:, c], b)).sum(axis=1)
 
-        biases, by_means = tuning.choose_gains(bias_bits, planes, feedback.BIASES)
+        biases, by_means = tuning.choose_gains(bias_bits, planes, feedback.BIASES,
+                                               price("biases"))
         near = Feedback.of(tuned, values, residuals, shape, biases)
 
-        gains, by_scales = tuning.choose_gains(_scale_gain_cost(bits, tuned, near), planes)
+        gains, by_scales = tuning.choose_gains(_scale_gain_cost(bits, tuned, near), planes,
+                                               price=price("gains"))
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
         saved += by_means + by_scales
         tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
-                                          p.ls8[:, :planes], values, residuals)
+                                          p.ls8[:, :planes], values, residuals, layout)
         saved += more
-    if saved <= 8 * tuning.header_bytes(tune.method, planes, compact) * LENGTH_ONE:
+    if saved <= header_length(tune, planes, layout):
         return None, None
     return tune, near if tune.feedback else None
+
+
+def _prices(layout: str):
+    """name -> the code lengths of a tuning field's values (`tuning.prices`) where the
+    layout range-codes them, so the search weighs each choice's own cost; else None (a
+    header's bytes cost the same whatever they hold)."""
+    return tuning.prices if layout == "streamed" else lambda name: None
+
+
+def _fields(tune: Tune, planes: int) -> list:
+    """`tuning.fields` of one image's tuning (with its gains when it has feedback)."""
+    gains = (tune.gains, tune.biases) if tune.feedback else (None, None)
+    return tuning.fields(tune.offsets, tune.couplings, *gains, planes)
+
+
+def header_length(tune: Tune, planes: int, layout: str) -> int:
+    """What an image's tuning costs its payload, in 1/LENGTH_ONE bit: its header's bytes,
+    or in the "streamed" layout its fields' code length under their priors."""
+    if layout == "streamed":
+        return tuning.fields_length(_fields(tune, planes))
+    return 8 * tuning.header_bytes(tune.method, planes, layout == "compact") * LENGTH_ONE
 
 
 def _scale_gain_cost(bits, params: Params, near: Feedback):
@@ -367,12 +403,17 @@ def _scale_gain_cost(bits, params: Params, near: Feedback):
 
 def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
                    bits, planes: int, shape: tuple, levels: np.ndarray, values: np.ndarray,
-                   residuals: np.ndarray) -> tuple[Tune, Feedback, float]:
-    """(tuning, its feedback, code length saved): the scale offsets chosen again with the
-    feedback's moves in place (the scale gains' level moves and the bias gains' mean
-    moves), then the scale gains again, each kept only if the exact code length (the
-    surprises measured anew) falls. The first offsets were chosen before any feedback,
-    which moves levels on average, so they leave bits behind."""
+                   residuals: np.ndarray, layout: str) -> tuple[Tune, Feedback, float]:
+    """(tuning, its feedback, subpixels' code length saved): the scale offsets chosen again
+    with the feedback's moves in place (the scale gains' level moves and the bias gains'
+    mean moves), then the scale gains again, each kept only if the exact code length (the
+    surprises measured anew; in the "streamed" layout with the fields' own) falls. The
+    first offsets were chosen before any feedback, which moves levels on average, so they
+    leave bits behind."""
+    price = _prices(layout)
+
+    def own(t: Tune) -> int:  # what the fields cost where they are range-coded
+        return header_length(t, planes, layout) if layout == "streamed" else 0
 
     def total(t: Tune) -> tuple[float, Feedback]:
         tp = pixel_params(raw, flat_base, t)
@@ -394,25 +435,47 @@ def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.nd
     best, best_near = tune, near
     best_bits, _ = total(tune)
     before = best_bits
-    offsets, _ = tuning.choose(moved_bits, levels)
+    offsets, _ = tuning.choose(moved_bits, levels, price("offsets"))
     trial = Tune.of(offsets, tune.couplings, tune.gains, tune.biases)
     trial_bits, trial_near = total(trial)
-    if trial_bits < best_bits:
+    if trial_bits + own(trial) < best_bits + own(best):
         best, best_near, best_bits = trial, trial_near, trial_bits
         tp = pixel_params(raw, flat_base, trial)
-        gains, _ = tuning.choose_gains(_scale_gain_cost(bits, tp, trial_near), planes)
+        gains, _ = tuning.choose_gains(_scale_gain_cost(bits, tp, trial_near), planes,
+                                       price=price("gains"))
         trial = Tune.of(offsets, tune.couplings, gains, tune.biases)
         trial_bits, trial_near = total(trial)
-        if trial_bits < best_bits:
+        if trial_bits + own(trial) < best_bits + own(best):
             best, best_near, best_bits = trial, trial_near, trial_bits
     return best, best_near, before - best_bits
 
 
+def tuned_coder(tune: Tune | None, planes: int, layout: str):
+    """A range encoder ready for an image's pixels: in the "streamed" layout its tuning's
+    fields are coded first, under their priors."""
+    coder = entropy.encoder()
+    if layout == "streamed" and tune is not None:
+        for name, rows, symbols in _fields(tune, planes):
+            entropy.encode(coder, symbols, tuning.prior_tables(name)[rows])
+    return coder
+
+
+def payload_of(coder, tune: Tune | None, planes: int, layout: str) -> bytes:
+    """An image's payload once `tuned_coder`'s coder has its pixels: the code, behind the
+    tuning's header in the layouts that have one."""
+    code = entropy.finish(coder, trimmed=layout == "streamed")
+    if tune is None or layout == "streamed":
+        return code
+    gains = (tune.gains, tune.biases) if tune.feedback else None
+    return tuning.pack(tune.offsets, tune.couplings, gains,
+                       planes == 1 and layout == "compact") + code
+
+
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
-                compact: bool) -> Coded:
-    coder, bits = entropy.encoder(), 0.0
+                layout: str) -> Coded:
     base = base_prediction(rgb)
-    chosen, near = tuning_of(out, rgb, base, planes, method, compact)
+    chosen, near = tuning_of(out, rgb, base, planes, method, layout)
+    coder, bits = tuned_coder(chosen, planes, layout), 0.0
     rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
     for y in range(0, out.shape[0], rows_per_chunk):
         band = slice(y, y + rows_per_chunk)
@@ -422,22 +485,22 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
         entropy.encode(coder, symbols, tables)
         total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
         bits += entropy.cross_entropy_bits(symbols, tables, total=total)
+    payload = payload_of(coder, chosen, planes, layout)
     if chosen is None:
-        return Coded(entropy.finish(coder), bits)
-    gains = (chosen.gains, chosen.biases) if chosen.feedback else None
-    header = tuning.pack(chosen.offsets, chosen.couplings, gains, planes == 1 and compact)
-    return Coded(header + entropy.finish(coder), bits, chosen.method)
+        return Coded(payload, bits)
+    return Coded(payload, bits, chosen.method,
+                 header_length(chosen, planes, layout) / LENGTH_ONE)
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
                  width: int, progress=None, trace=None, workers: int | None = None,
-                 methods: Sequence[str] | str = "model", compact: bool = True) -> np.ndarray:
+                 methods: Sequence[str] | str = "model", layout: str = "streamed") -> np.ndarray:
     """Decode same-sized images together; returns (B, P, H, W) uint8.
 
     `methods` names each payload's method ("model", "tuned" or "adaptive"), or one for
     all: an untuned image is a tuned one with zero offsets, and a tuned one an adaptive one
-    with zero gains, so all kinds share a batch. `compact`: a gray image's header is in its
-    compact form (archive format 5 on).
+    with zero gains, so all kinds share a batch. `layout`: how the payloads carry their
+    tuning (`LAYOUTS`).
     A large batch is shared by single-threaded processes (`workers.shares`: `workers` of
     them if given), each decoding its images together. `progress`, if given, is
     called with the number of images of a part after each of its rows; `trace`, if given,
@@ -447,7 +510,7 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
     def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
-        return _decode(engine, *part, planes, height, width, report, trace, compact)
+        return _decode(engine, *part, planes, height, width, report, trace, layout)
 
     cuts = shares(len(payloads), 1 if trace is not None else workers)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
@@ -460,19 +523,22 @@ def _models() -> entropy.Models:
     return entropy.Models(all_tables())
 
 
-def _split_tuning(payloads: list[bytes], methods: list[str], planes: int,
-                  compact: bool) -> tuple:
-    """(coder words of each payload, the batch's Tune or None)."""
+def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout: str) -> tuple:
+    """(a range decoder over each payload's code, the batch's Tune or None), the tuning
+    read from each payload's header, or in the "streamed" layout decoded from its code."""
+    streamed = layout == "streamed"
     if all(m == "model" for m in methods):
-        return payloads, None
+        return [entropy.decoder(p, trimmed=streamed) for p in payloads], None
     offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
     couplings = np.zeros((len(payloads), 3), np.int64)
     gains = np.zeros((len(payloads), 3), np.int64)
     biases = np.zeros((len(payloads), 3), np.int64)
-    words = []
+    decoders = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
-        if method in tuning.HEADER_BYTES:
-            size = tuning.header_bytes(method, planes, compact)
+        if method not in tuning.HEADER_BYTES and method != "model":
+            raise ValueError(f"no decoder for method {method!r}")
+        if method != "model" and not streamed:
+            size = tuning.header_bytes(method, planes, layout == "compact")
             if len(payload) < size:
                 raise entropy.PayloadError("payload is shorter than its tuning header")
             try:
@@ -480,16 +546,18 @@ def _split_tuning(payloads: list[bytes], methods: list[str], planes: int,
             except ValueError as exc:
                 raise entropy.PayloadError(str(exc)) from None
             payload = payload[size:]
-        elif method != "model":
-            raise ValueError(f"no decoder for method {method!r}")
-        words.append(payload)
-    return words, Tune.of(offsets, couplings, gains, biases)
+        decoders.append(entropy.decoder(payload, trimmed=streamed))
+        if method != "model" and streamed:
+            symbols = {name: decoders[-1].decode(entropy.FAMILY, tuning.prior_tables(name)[rows])
+                       for name, rows in tuning.field_rows(planes, method == "adaptive")}
+            offsets[i], couplings[i], gains[i], biases[i] = tuning.from_fields(symbols, planes)
+    return decoders, Tune.of(offsets, couplings, gains, biases)
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
-            height: int, width: int, progress, trace, compact: bool) -> np.ndarray:
+            height: int, width: int, progress, trace, layout: str) -> np.ndarray:
     try:
-        return _decode_rows(engine, *_split_tuning(payloads, methods, planes, compact), planes,
+        return _decode_rows(engine, *open_payloads(payloads, methods, planes, layout), planes,
                             height, width, progress, trace)
     except AssertionError:  # constriction's word for data its models cannot have produced
         raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
@@ -522,10 +590,9 @@ def _signed_surprises() -> np.ndarray:
     return np.concatenate([q[:, :0:-1], q], axis=1).reshape(-1).astype(np.int8)
 
 
-def _decode_rows(engine: Engine, payloads: list[bytes], tune: Tune | None, planes: int,
+def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
                  height: int, width: int, progress, trace) -> np.ndarray:
-    decoders = [entropy.decoder(p) for p in payloads]
-    batch = len(payloads)
+    batch = len(decoders)
     img = np.zeros((batch, 3, height, width), np.uint8)
     state = engine.start(batch, width)
     residuals = np.zeros((batch, 3), np.int64)

@@ -27,16 +27,44 @@ def encode(coder, symbols: np.ndarray, tables: np.ndarray) -> None:
     coder.encode(symbols.astype(np.int32), FAMILY, tables)
 
 
-def finish(coder) -> bytes:
-    """The payload: the coder's 32-bit words, little-endian."""
-    return coder.get_compressed().astype("<u4").tobytes()
+def finish(coder, trimmed: bool = True) -> bytes:
+    """The payload: the coder's 32-bit words, little-endian, or `trimmed` (format 6 on):
+    big-endian with the last word chosen to end in as many zero bytes as it can, and the
+    trailing zero bytes dropped (`ending_word`); the decoder reads zeros past the end."""
+    words = coder.get_compressed()
+    if not trimmed:
+        return words.astype("<u4").tobytes()
+    if not coder.is_empty():
+        end, (lower, width) = coder.pos()
+        last = ending_word(lower, width)
+        if last is not None:
+            words = np.append(words[:end], np.uint32(last))
+    return words.astype(">u4").tobytes().rstrip(b"\0")
 
 
-def decoder(payload: bytes):
-    """A range decoder over a payload written by `finish`."""
-    if len(payload) % 4:
+def ending_word(lower: int, width: int) -> int | None:
+    """The word that ends the code with the most trailing zero bits: the coder's state is
+    the interval [lower, lower + width) of 64-bit values, and its top word followed by
+    zeros must lie inside it (without a carry into the words before: None if no such word,
+    and then the coder's own ending stays). constriction writes the smallest such word."""
+    first = -(-lower >> 32)  # ceil(lower / 2**32)
+    last = (min(lower + width, 1 << 64) - 1) >> 32
+    if first > last:
+        return None
+    bits = (first ^ last).bit_length()  # first and last share their bits above `bits`
+    if not bits or first % (1 << bits) == 0:
+        return first  # that prefix then zeros
+    return last >> (bits - 1) << (bits - 1)  # the prefix, a one, then zeros
+
+
+def decoder(payload: bytes, trimmed: bool = True):
+    """A range decoder over a payload written by `finish` (as it was `trimmed` or not)."""
+    if trimmed:
+        payload += bytes(-len(payload) % 4)
+    elif len(payload) % 4:
         raise PayloadError("payload length is not a whole number of 32-bit words")
-    return constriction.stream.queue.RangeDecoder(np.frombuffer(payload, "<u4").astype(np.uint32))
+    order = ">u4" if trimmed else "<u4"
+    return constriction.stream.queue.RangeDecoder(np.frombuffer(payload, order).astype(np.uint32))
 
 
 def model_of(table: np.ndarray):
