@@ -59,8 +59,7 @@ def main(corpus: Path, model: str = "default") -> None:
         tunes = [t for t in choices(engine, images) if t is not None]
         print(f"# {mode}: {len(images)} tiles, {len(tunes)} tuned")
         for t in tunes:
-            gains = (t.gains, t.biases) if t.feedback else (None, None)
-            for name, rows, symbols in tuning.fields(t.offsets, t.couplings, *gains,
+            for name, rows, symbols in tuning.fields(t.offsets, t.couplings, t.carried_gains,
                                                      len(images[0])):
                 np.add.at(counts[name], (rows, symbols), 1)
     for name, table in counts.items():

@@ -127,8 +127,7 @@ def test_format_6_codes_every_field_the_header_held_and_gives_it_back():
         offsets = rng.integers(-8, 8, (3, 8))
         couplings = rng.choice(COUPLING_OFFSETS, 3) if planes == 3 else np.zeros(3, np.int64)
         gains, biases = rng.integers(0, 16, 3), rng.integers(-8, 8, 3)
-        coded = fields(offsets, couplings, gains if adaptive else None,
-                       biases if adaptive else None, planes)
+        coded = fields(offsets, couplings, (gains, biases) if adaptive else None, planes)
         assert [(n, r.tolist()) for n, r, _ in coded] == [
             (n, r.tolist()) for n, r in field_rows(planes, adaptive)]
         for name, rows, symbols in coded:
@@ -142,7 +141,7 @@ def test_format_6_codes_every_field_the_header_held_and_gives_it_back():
         for got, expected in zip(back[2:], want, strict=True):
             assert np.array_equal(got[:planes], expected[:planes]) and not got[planes:].any()
     with pytest.raises(ValueError, match="steps of 4"):
-        fields(np.zeros((3, 8), np.int64), np.array([0, 5, 0]), None, None, 3)
+        fields(np.zeros((3, 8), np.int64), np.array([0, 5, 0]), None, 3)
 
 
 def test_the_priors_give_every_value_a_count_and_price_fields_by_them():
@@ -156,7 +155,7 @@ def test_the_priors_give_every_value_a_count_and_price_fields_by_them():
         assert table.shape == shape and (table >= 1).all()
         exact = np.log2(table.sum(axis=1, keepdims=True) / table.astype(np.float64)) * 2**16
         assert (np.abs(exact - np.floor(exact) - 0.5) > 1e-6).all()
-    coded = fields(np.zeros((3, 8), np.int64), np.zeros(3, np.int64), None, None, 3)
+    coded = fields(np.zeros((3, 8), np.int64), np.zeros(3, np.int64), None, 3)
     offsets = prior_tables("offsets").astype(np.float64)
     couplings = prior_tables("couplings").astype(np.float64)
     want = 3 * np.log2(offsets.sum(axis=1) / offsets[:, 8]).sum()

@@ -114,6 +114,12 @@ class Tune:
         return bool(self.gains.any() or self.biases.any())
 
     @property
+    def carried_gains(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """(scale gains, bias gains) when the feedback moves anything, else None: what a
+        header or the fields carry beyond the offsets."""
+        return (self.gains, self.biases) if self.feedback else None
+
+    @property
     def method(self) -> str:
         """The coding method that carries this tuning."""
         return "adaptive" if self.feedback else "tuned"
@@ -378,8 +384,7 @@ def _prices(layout: str):
 
 def _fields(tune: Tune, planes: int) -> list:
     """`tuning.fields` of one image's tuning (with its gains when it has feedback)."""
-    gains = (tune.gains, tune.biases) if tune.feedback else (None, None)
-    return tuning.fields(tune.offsets, tune.couplings, *gains, planes)
+    return tuning.fields(tune.offsets, tune.couplings, tune.carried_gains, planes)
 
 
 def header_length(tune: Tune, planes: int, layout: str) -> int:
@@ -466,8 +471,7 @@ def payload_of(coder, tune: Tune | None, planes: int, layout: str) -> bytes:
     code = entropy.finish(coder, trimmed=layout == "streamed")
     if tune is None or layout == "streamed":
         return code
-    gains = (tune.gains, tune.biases) if tune.feedback else None
-    return tuning.pack(tune.offsets, tune.couplings, gains,
+    return tuning.pack(tune.offsets, tune.couplings, tune.carried_gains,
                        planes == 1 and layout == "compact") + code
 
 

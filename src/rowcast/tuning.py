@@ -93,11 +93,13 @@ def field_rows(planes: int, adaptive: bool) -> list[tuple[str, np.ndarray]]:
     return out
 
 
-def fields(offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None,
-           biases: np.ndarray | None, planes: int) -> list[tuple[str, np.ndarray, np.ndarray]]:
-    """An image's tuning as format 6 codes it: `field_rows` (adaptive when `gains` is
-    given) with each field's symbol, its index among the values of its prior. ValueError for
-    a coupling offset that is not one of COUPLING_OFFSETS."""
+def fields(offsets: np.ndarray, couplings: np.ndarray,
+           gains: tuple[np.ndarray, np.ndarray] | None,
+           planes: int) -> list[tuple[str, np.ndarray, np.ndarray]]:
+    """An image's tuning as format 6 codes it: `field_rows` (adaptive when `gains`, the
+    scale and bias gains as for `pack`, is given) with each field's symbol, its index among
+    the values of its prior. ValueError for a coupling offset that is not one of
+    COUPLING_OFFSETS."""
     steps = np.searchsorted(COUPLING_OFFSETS, couplings)
     if planes == 3 and not np.array_equal(
             COUPLING_OFFSETS[np.minimum(steps, len(COUPLING_OFFSETS) - 1)], couplings):
@@ -105,7 +107,8 @@ def fields(offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None,
                          "steps of 4")
     symbols = {"offsets": offsets[:planes].reshape(-1) - OFFSETS[0], "couplings": steps}
     if gains is not None:
-        symbols |= {"gains": gains[:planes] - GAINS[0], "biases": biases[:planes] - BIASES[0]}
+        scale, bias = gains
+        symbols |= {"gains": scale[:planes] - GAINS[0], "biases": bias[:planes] - BIASES[0]}
     return [(name, rows, symbols[name]) for name, rows in field_rows(planes, gains is not None)]
 
 
