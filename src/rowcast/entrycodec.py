@@ -1,0 +1,393 @@
+"""Pictures to archive payloads and back: the pixel format's planes become pieces.
+
+A picture of any format in `pixelformats.FORMATS` is coded group by group (`groups`: R, G,
+B together, alpha alone, gray or palette indices alone). An 8-bit group is one piece for
+the predictor; 1-bit values go to it as 0 and 255; a 16-bit group is split by
+`rowcast.deep` into a few parameter bytes, 8-bit planes for the predictor and literal low
+bits. Each predictor piece is kept as the predictor's code or, when shorter, as zlib or
+raw bytes, so no piece costs more than its raw size plus a few bytes.
+
+The payload of method "coded" (docs/FORMAT.md) is, for each group, the number of its
+pieces, then each piece: a method byte (`PIECES`), its length and its bytes. The whole
+picture may instead be kept as a PNG of its values (method "png") or raw ("literal"),
+whichever of the three is shortest.
+"""
+
+from __future__ import annotations
+
+import io
+import zlib
+from collections import defaultdict
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import imagecodecs
+import numpy as np
+from PIL import Image
+
+from rowcast import codec, deep, varint
+from rowcast.entropy import PayloadError
+from rowcast.picture import PALETTE, Picture
+from rowcast.pixelformats import PixelFormat
+from rowcast.predictor import Engine
+
+PIECES: dict[str, int] = {"literal": 0, "model": 1, "tuned": 2, "adaptive": 3, "zlib": 4}
+_PIECE_NAMES = {code: name for name, code in PIECES.items()}
+PREDICTED = ("model", "tuned", "adaptive")  # pieces coded by the predictor
+ONE_BIT_HIGH = 255  # a 1-bit value of 1 as the predictor sees it
+
+
+class CodingError(ValueError):
+    """A payload that does not decode; the message says why (without the entry's name)."""
+
+
+@dataclass(frozen=True)
+class Encoded:
+    """A picture's payload: its method ("coded", "png" or "literal"), bytes, the methods
+    of its pieces (for `rowcast list`) and the bits the model's cross-entropy and the other
+    pieces' bytes account for."""
+
+    method: str
+    payload: bytes
+    parts: tuple[str, ...]
+    cross_entropy: float
+
+
+@dataclass(frozen=True)
+class Wanted:
+    """A payload to decode: how the archive describes it. `layout` is the predictor
+    payload layout (`codec.LAYOUTS`; "streamed" from format 7 on)."""
+
+    format: PixelFormat
+    width: int
+    height: int
+    method: str
+    payload: bytes
+    layout: str = "streamed"
+
+
+# ---- the pieces of a picture -------------------------------------------------------------
+
+def _groups(picture: Picture) -> list[list[tuple[str, object]]]:
+    """Per group, its pieces as ("predict", uint8 (P, H, W)) or ("bytes", bytes)."""
+    fmt, values = picture.pixel_format, picture.values
+    out = []
+    for group in fmt.groups:
+        planes = values[list(group)]
+        if fmt.bits == 16:
+            params, model_planes, literal = deep.split(planes)
+            rest = b"" if literal is None else np.ascontiguousarray(literal).tobytes()
+            out.append([("bytes", params), *(("predict", p) for p in model_planes),
+                        ("bytes", rest)])
+        elif fmt.bits == 1:
+            out.append([("predict", (planes * ONE_BIT_HIGH).astype(np.uint8))])
+        else:
+            out.append([("predict", np.ascontiguousarray(planes, dtype=np.uint8))])
+    return out
+
+
+def _plain(data: bytes) -> tuple[str, bytes]:
+    """Raw bytes as the shorter of zlib and literal."""
+    packed = zlib.compress(data, 9)
+    return ("zlib", packed) if len(packed) < len(data) else ("literal", data)
+
+
+def _piece(method: str, data: bytes) -> bytes:
+    return bytes([PIECES[method]]) + varint.pack(len(data)) + data
+
+
+def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
+                    workers: int | None = None) -> list[Encoded]:
+    """The shortest payload of each picture (`Encoded`); same-sized predictor pieces of
+    all the pictures are coded together. `engine` None codes without the predictor."""
+    groups = [_groups(p) for p in pictures]
+    buckets: dict[tuple, list[tuple[int, int, int]]] = defaultdict(list)
+    for i, picture_groups in enumerate(groups):
+        for g, pieces in enumerate(picture_groups):
+            for k, (what, data) in enumerate(pieces):
+                if what == "predict":
+                    buckets[data.shape].append((i, g, k))
+    coded: dict[tuple[int, int, int], codec.Coded] = {}
+    if engine is not None:
+        for members in buckets.values():
+            images = [groups[i][g][k][1] for i, g, k in members]
+            coded.update(zip(members, codec.encode_batch(engine, images, "adaptive",
+                                                         workers=workers), strict=True))
+    results = []
+    for i, picture in enumerate(pictures):
+        body, parts, bits = bytearray(), [], 0.0
+        for g, pieces in enumerate(groups[i]):
+            body += varint.pack(len(pieces))
+            for k, (what, data) in enumerate(pieces):
+                raw = data.tobytes() if what == "predict" else data
+                method, chosen = _plain(raw)
+                c = coded.get((i, g, k))
+                if c is not None and len(c.payload) < len(chosen):
+                    method, chosen = c.method, c.payload
+                    bits += c.cross_entropy + c.tuning_bits
+                else:
+                    bits += 8 * len(chosen)
+                body += _piece(method, chosen)
+                if what == "predict":
+                    parts.append(method)
+        results.append(_shortest(picture, Encoded("coded", bytes(body), tuple(parts), bits)))
+    return results
+
+
+def _shortest(picture: Picture, coded: Encoded) -> Encoded:
+    """The shortest of the coded payload, a PNG of the values and the raw values."""
+    best = coded
+    for method, payload in (("png", png_of(picture)), ("literal", literal_of(picture))):
+        if len(payload) < len(best.payload):
+            best = Encoded(method, payload, (), 8.0 * len(payload))
+    return best
+
+
+# ---- whole-picture fallbacks -------------------------------------------------------------
+
+def literal_of(picture: Picture) -> bytes:
+    """The raw values: plane-major, 16-bit big-endian, 1-bit one byte a value."""
+    dtype = ">u2" if picture.pixel_format.bits == 16 else np.uint8
+    return np.ascontiguousarray(picture.values, dtype=dtype).tobytes()
+
+
+def _interleaved(values: np.ndarray) -> np.ndarray:
+    return values[0] if values.shape[0] == 1 else np.ascontiguousarray(values.transpose(1, 2, 0))
+
+
+def png_of(picture: Picture) -> bytes:
+    """The values as a PNG at zlib's highest effort (a palette image with its palette, at
+    the bit depth the palette needs; 1-bit packed); no metadata."""
+    fmt = picture.pixel_format
+    if fmt.palette or fmt.bits == 1:
+        image = Image.fromarray(picture.values[0], "P" if fmt.palette else "L")
+        if fmt.palette:
+            image.putpalette(picture.extra(PALETTE))
+        else:
+            image = image.point(lambda v: 255 * v).convert("1")
+        buffer = io.BytesIO()
+        image.save(buffer, "PNG", optimize=True)
+        return buffer.getvalue()
+    return bytes(imagecodecs.png_encode(_interleaved(picture.values), level=9))
+
+
+def _from_png(fmt: PixelFormat, width: int, height: int, payload: bytes) -> np.ndarray:
+    if fmt.palette or fmt.bits == 1:
+        try:
+            with Image.open(io.BytesIO(payload), formats=["PNG"]) as image:
+                if image.size != (width, height) or image.mode != ("P" if fmt.palette else "1"):
+                    raise CodingError("PNG payload of the wrong size or mode")
+                flat = np.asarray(image, dtype=np.uint8)
+        except (OSError, SyntaxError, ValueError) as exc:
+            raise CodingError(f"PNG payload does not decode ({exc})") from None
+        return flat[None].astype(np.uint8)
+    try:
+        flat = imagecodecs.png_decode(payload)
+    except Exception as exc:  # imagecodecs raises its own error classes
+        raise CodingError(f"PNG payload does not decode ({exc})") from None
+    values = flat[None] if flat.ndim == 2 else flat.transpose(2, 0, 1)
+    if values.shape != (fmt.planes, height, width) or values.dtype != np.dtype(fmt.dtype):
+        raise CodingError("PNG payload of the wrong size or depth")
+    return np.ascontiguousarray(values)
+
+
+def _from_literal(fmt: PixelFormat, width: int, height: int, payload: bytes) -> np.ndarray:
+    dtype = ">u2" if fmt.bits == 16 else np.uint8
+    count = fmt.planes * width * height
+    if len(payload) != count * np.dtype(dtype).itemsize:
+        raise CodingError("literal payload of the wrong length")
+    values = np.frombuffer(payload, dtype).reshape(fmt.planes, height, width)
+    if fmt.bits == 1 and values.size and int(values.max()) > 1:
+        raise CodingError("1-bit literal payload holds values above 1")
+    return values.astype(fmt.dtype)
+
+
+# ---- decoding ----------------------------------------------------------------------------
+
+class _Reader:
+    """Reads a coded payload's numbers and pieces, refusing to run past its end."""
+
+    def __init__(self, data: bytes) -> None:
+        self.data, self.pos = data, 0
+
+    def number(self) -> int:
+        try:
+            value, self.pos = varint.unpack(self.data, self.pos)
+        except IndexError:
+            raise CodingError("truncated coded payload") from None
+        except ValueError:
+            raise CodingError("malformed number in coded payload") from None
+        return value
+
+    def piece(self) -> tuple[str, bytes]:
+        if self.pos >= len(self.data):
+            raise CodingError("truncated coded payload")
+        code = self.data[self.pos]
+        self.pos += 1
+        if code not in _PIECE_NAMES:
+            raise CodingError(f"unknown piece method {code}")
+        length = self.number()
+        if length > len(self.data) - self.pos:
+            raise CodingError("piece runs past the payload")
+        self.pos += length
+        return _PIECE_NAMES[code], self.data[self.pos - length : self.pos]
+
+
+def _plain_bytes(method: str, data: bytes, size: int) -> bytes:
+    """A zlib or literal piece's bytes, refusing more than `size` (checked as it inflates)."""
+    if method == "literal":
+        out = data
+    elif method == "zlib":
+        inflater = zlib.decompressobj()
+        try:
+            out = inflater.decompress(data, size + 1)
+        except zlib.error:
+            raise CodingError("zlib piece does not inflate") from None
+        if not inflater.eof:
+            raise CodingError("zlib piece inflates past its size")
+    else:
+        raise CodingError(f"a {method} piece where bytes belong")
+    if len(out) > size:
+        raise CodingError("piece larger than its plane")
+    return out
+
+
+@dataclass
+class _Slot:
+    """A predictor plane of a payload: where its decoded values go."""
+
+    item: int
+    shape: tuple[int, int, int]
+    method: str
+    data: bytes
+
+
+def _parse(want: Wanted, index: int, slots: list[_Slot]) -> list[list]:
+    """The groups of a coded payload as lists of bytes or `_Slot`s (to be decoded)."""
+    fmt, h, w = want.format, want.height, want.width
+    reader, groups = _Reader(want.payload), []
+    for group in fmt.groups:
+        count = reader.number()
+        expected_min = 3 if fmt.bits == 16 else 1
+        if not expected_min <= count <= (3 + deep.MAX_PLANES if fmt.bits == 16 else 1):
+            raise CodingError(f"a group of {count} pieces")
+        pieces = []
+        for k in range(count):
+            method, data = reader.piece()
+            predict = fmt.bits != 16 or 0 < k < count - 1
+            shape = (len(group), h, w)
+            if not predict:
+                pieces.append(_plain_bytes(method, data, deep.MAX_PARAMS if k == 0
+                                           else 2 * len(group) * h * w))
+            elif method in PREDICTED:
+                slot = _Slot(index, shape, method, data)
+                slots.append(slot)
+                pieces.append(slot)
+            else:
+                raw = _plain_bytes(method, data, int(np.prod(shape)))
+                if len(raw) != int(np.prod(shape)):
+                    raise CodingError("plane piece of the wrong length")
+                pieces.append(np.frombuffer(raw, np.uint8).reshape(shape))
+        groups.append(pieces)
+    if reader.pos != len(want.payload):
+        raise CodingError("trailing bytes in coded payload")
+    return groups
+
+
+def _assemble(want: Wanted, groups: list[list], planes: dict[int, np.ndarray]) -> np.ndarray:
+    """The picture's values from its parsed groups and decoded predictor planes."""
+    fmt = want.format
+    values = np.zeros((fmt.planes, want.height, want.width), fmt.dtype)
+    for group, pieces in zip(fmt.groups, groups, strict=True):
+        got = [planes[id(p)] if isinstance(p, _Slot) else p for p in pieces]
+        if fmt.bits == 16:
+            literal = np.frombuffer(got[-1], np.uint8) if got[-1] else None
+            part = deep.join(got[0], got[1:-1], literal, (len(group), want.height, want.width))
+        elif fmt.bits == 1:
+            plane = got[0]
+            if np.any((plane != 0) & (plane != ONE_BIT_HIGH)):
+                raise CodingError("1-bit plane holds values other than 0 and 1")
+            part = (plane // ONE_BIT_HIGH).astype(np.uint8)
+        else:
+            part = got[0]
+        values[list(group)] = part
+    return values
+
+
+def decode_values(engine: Engine | None, wanted: Sequence[Wanted], batch: int = 32,
+                  progress: Callable[[int], None] | None = None,
+                  workers: int | None = None) -> list[np.ndarray | CodingError]:
+    """Each payload's values, or the CodingError that stops it; a damaged payload never
+    stops the others. Predictor planes of the same shape decode together, `batch` at a
+    time; `engine` may be None when no payload needs the predictor."""
+    results: list[np.ndarray | CodingError | None] = [None] * len(wanted)
+    slots: list[_Slot] = []
+    parsed: dict[int, list[list]] = {}
+    for i, want in enumerate(wanted):
+        try:
+            if want.method == "png":
+                results[i] = _from_png(want.format, want.width, want.height, want.payload)
+            elif want.method == "literal":
+                results[i] = _from_literal(want.format, want.width, want.height, want.payload)
+            elif want.method == "coded":
+                parsed[i] = _parse(want, i, slots)
+            elif want.method in PREDICTED:  # an archive of format 1 to 6: one piece
+                slot = _Slot(i, (want.format.planes, want.height, want.width), want.method,
+                             want.payload)
+                slots.append(slot)
+                parsed[i] = [[slot]]
+            else:
+                raise CodingError(f"no decoder for method {want.method!r}")
+        except CodingError as exc:
+            results[i] = exc
+    planes = _decode_slots(engine, wanted, slots, batch, progress, workers)
+    for i, groups in parsed.items():
+        mine = [s for g in groups for s in g if isinstance(s, _Slot)]
+        failed = next((planes[id(s)] for s in mine if isinstance(planes[id(s)], CodingError)),
+                      None)
+        if failed is not None:
+            results[i] = failed
+            continue
+        try:
+            if wanted[i].method == "coded":
+                results[i] = _assemble(wanted[i], groups, planes)
+            else:
+                results[i] = planes[id(groups[0][0])]
+        except (CodingError, ValueError) as exc:
+            results[i] = CodingError(str(exc))
+    return results
+
+
+def _decode_slots(engine: Engine | None, wanted: Sequence[Wanted], slots: list[_Slot],
+                  batch: int, progress, workers) -> dict[int, np.ndarray | CodingError]:
+    """Decode predictor planes of the same shape and layout together; on a failure, each
+    of that batch alone, so only the damaged ones fail."""
+    out: dict[int, np.ndarray | CodingError] = {}
+    if slots and engine is None:
+        raise ValueError("predictor pieces need an engine")
+    buckets: dict[tuple, list[_Slot]] = defaultdict(list)
+    for s in slots:
+        buckets[(s.shape, wanted[s.item].layout)].append(s)
+    for ((planes, h, w), layout), members in buckets.items():
+        for start in range(0, len(members), batch):
+            part = members[start : start + batch]
+            try:
+                decoded = codec.decode_batch(engine, [s.data for s in part], planes, h, w,
+                                             progress=progress, workers=workers,
+                                             methods=[s.method for s in part], layout=layout)
+                out.update((id(s), d) for s, d in zip(part, decoded, strict=True))
+            except (PayloadError, ValueError, RuntimeError):
+                for s in part:
+                    try:
+                        out[id(s)] = codec.decode_batch(engine, [s.data], planes, h, w,
+                                                        workers=1, methods=[s.method],
+                                                        layout=layout)[0]
+                    except (PayloadError, ValueError, RuntimeError) as exc:
+                        out[id(s)] = CodingError(f"predictor piece does not decode ({exc})")
+    return out
+
+
+def needs_engine(methods: Sequence[str], parts: Sequence[Sequence[str]]) -> bool:
+    """Whether payloads with these methods and pieces need the predictor."""
+    return any(m in PREDICTED for m in methods) or any(
+        p in PREDICTED for ps in parts for p in ps)
