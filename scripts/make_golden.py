@@ -1,125 +1,70 @@
-"""Make the golden files in tests/golden/: a tiny model, two tiny images, their archives.
+"""Make the golden files of archive format 7 in tests/golden/.
 
-    python scripts/make_golden.py first   # tiny model, images, golden.rowcast (0.1, untuned)
-    python scripts/make_golden.py tuned   # tuned/sky.png, golden-tuned.rowcast (0.2, tuning)
-    python scripts/make_golden.py mixture # tiny-mixture model, golden-mixture.rowcast (0.2)
-    python scripts/make_golden.py packed  # golden-packed.rowcast (0.3, format version 3)
-    python scripts/make_golden.py adaptive  # golden-adaptive.rowcast and
-                                            # golden-mixture-adaptive.rowcast (0.4, gains)
-    python scripts/make_golden.py retuned   # golden-retuned.rowcast (0.4.1: the encoder's
-                                            # second choice of scale offsets; the mixture
-                                            # archive came out unchanged, so it has none)
-    python scripts/make_golden.py compact   # gray/gate.png, golden-compact.rowcast (0.5:
-                                            # format 5, a gray entry's compact header)
-    python scripts/make_golden.py streamed  # golden-streamed.rowcast and
-                                            # golden-mixture-streamed.rowcast (0.8: format
-                                            # 6, tuning range-coded, endings trimmed)
+    python scripts/make_golden.py formats   # formats/*, golden-formats.rowcast (0.9: format
+                                            # 7, every pixel format, extras, a kept file)
 
-Each part ran once; the files are committed, and tests check that today's code still
-decodes the archives and re-encodes the images to the same bytes. Never rerun a part to
-make a test pass: a difference means old archives would break, which needs a format
-version bump instead. A new coding method gets a new part and a new archive; so does an
-encoder that chooses differently within a format (the older archives stay, decoded only).
+The tiny models and the archives of formats 1 to 6 were made once by the parts of this
+script in rowcast 0.8 and earlier (see the repository's history); they are decoded by
+`rowcast.legacy` and never written again. Each part ran once; the files are committed, and
+tests check that today's code still decodes the archive and re-encodes the files to the same
+bytes. Never rerun a part to make a test pass: a difference means old archives would break,
+which needs a format version bump instead.
 """
 
 import sys
 from pathlib import Path
 
+import imagecodecs
 import numpy as np
-import torch
-from PIL import Image
+import tifffile
+from PIL import Image, PngImagePlugin
 
 import rowcast
-from rowcast import family as fam
-from rowcast.network import Predictor
-from rowcast.quantize import export, save_model
-from rowcast.train import Config, calibrate, train
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = ROOT / "tests" / "golden"
 
 
-
-def first() -> None:
-    GOLDEN.mkdir(parents=True, exist_ok=True)
-    cfg = Config(data=str(ROOT.parent / "shared" / "corpus"), out=str(ROOT / "runs" / "golden"),
-                 minutes=0.5, width=8, hidden=8, depth=2, batch=16, qat_at=0.4, validation=())
-    net = train(cfg)
-    card, tensors = export(net, "golden-tiny")
-    save_model(GOLDEN / "tiny.safetensors", card, tensors)
-    orchard = np.asarray(Image.open(ROOT / "sample_images/orchard-north/cam01_1200.png"))
-    (GOLDEN / "images").mkdir(exist_ok=True)
-    Image.fromarray(orchard[20:32, 8:24]).save(GOLDEN / "images/orchard.png")
-    leaf = np.asarray(Image.open(ROOT / "sample_images/frost-sensor/leaf_0600.png"))
-    Image.fromarray(leaf[10:17, 5:14]).save(GOLDEN / "images/leaf.png")
-    report(rowcast.compress([GOLDEN / "images"], GOLDEN / "golden.rowcast",
-                            model=GOLDEN / "tiny.safetensors", force=True, version=1))
-
-
-def tuned() -> None:
-    (GOLDEN / "tuned").mkdir(exist_ok=True)
-    sky = np.asarray(Image.open(ROOT / "sample_images/weather-ridge/sky_1300.png"))
-    Image.fromarray(sky[:40, :48]).save(GOLDEN / "tuned/sky.png")
-    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-tuned.rowcast",
-                            model=GOLDEN / "tiny.safetensors", version=2))
-
-
-def mixture() -> None:
-    """A two-component model: random weights (calibrated, not trained) are enough to pin the
-    arithmetic; its first-component weights sit mid-range so that tables really mix."""
-    torch.manual_seed(7)
-    net = Predictor(width=8, hidden=8, depth=2, left=3, activity=True, components=2)
-    sky = np.asarray(Image.open(GOLDEN / "tuned/sky.png")).transpose(2, 0, 1)
-    calibrate(net, torch.from_numpy(sky[None].copy()).float())
-    net.quant = True
-    with torch.no_grad():
-        net.out.bias[fam.OUTPUTS + 2 :: 3] = 0.5
-    card, tensors = export(net, "golden-tiny-mixture")
-    save_model(GOLDEN / "tiny-mixture.safetensors", card, tensors)
-    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-mixture.rowcast",
-                            model=GOLDEN / "tiny-mixture.safetensors", version=2))
-
-
-def packed() -> None:
-    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
-                            GOLDEN / "golden-packed.rowcast", model=GOLDEN / "tiny.safetensors",
-                            version=3))
-
-
-def adaptive() -> None:
-    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
-                            GOLDEN / "golden-adaptive.rowcast", model=GOLDEN / "tiny.safetensors"))
-    report(rowcast.compress([GOLDEN / "tuned"], GOLDEN / "golden-mixture-adaptive.rowcast",
-                            model=GOLDEN / "tiny-mixture.safetensors"))
-
-
-def retuned() -> None:
-    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned"],
-                            GOLDEN / "golden-retuned.rowcast", model=GOLDEN / "tiny.safetensors"))
-
-
-def compact() -> None:
-    (GOLDEN / "gray").mkdir(exist_ok=True)
-    gate = np.asarray(Image.open(ROOT / "sample_images/gate/gate_night.png"))
-    Image.fromarray(gate[8:48, 12:60]).save(GOLDEN / "gray/gate.png")
-    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"],
-                            GOLDEN / "golden-compact.rowcast", model=GOLDEN / "tiny.safetensors"))
-
-
-def streamed() -> None:
-    report(rowcast.compress([GOLDEN / "images", GOLDEN / "tuned", GOLDEN / "gray"],
-                            GOLDEN / "golden-streamed.rowcast", model=GOLDEN / "tiny.safetensors"))
-    report(rowcast.compress([GOLDEN / "tuned", GOLDEN / "gray"],
-                            GOLDEN / "golden-mixture-streamed.rowcast",
-                            model=GOLDEN / "tiny-mixture.safetensors"))
+def formats() -> None:
+    """One small file of each pixel format, cut from the committed golden images, with a
+    transparency key, palette transparency, colour under alpha 0, metadata chunks, a TIFF,
+    a PNM, a BMP and a lossless WebP, and a text file kept as bytes."""
+    folder = GOLDEN / "formats"
+    folder.mkdir(exist_ok=True)
+    sky = np.asarray(Image.open(GOLDEN / "tuned/sky.png"))[:12, :14]
+    gate = np.asarray(Image.open(GOLDEN / "gray/gate.png"))[:10, :12]
+    alpha = np.zeros(sky.shape[:2], np.uint8)
+    alpha[3:10, 2:12] = 255
+    alpha[2, 2:12] = 96
+    Image.fromarray(np.dstack([sky, alpha]), "RGBA").save(folder / "rgba.png")
+    Image.fromarray(np.dstack([gate, alpha[:10, :12]]), "LA").save(folder / "la.png")
+    Image.fromarray(sky).quantize(6).save(folder / "palette.png", transparency=2)
+    Image.fromarray(gate > 90).save(folder / "bits.png")
+    Image.fromarray(gate).save(folder / "keyed.png", transparency=int(gate[0, 0]))
+    deep = (gate.astype(np.uint16) * 13 + 1000)
+    (folder / "deep.png").write_bytes(imagecodecs.png_encode(deep))
+    (folder / "rgb16.png").write_bytes(imagecodecs.png_encode(sky.astype(np.uint16) * 255 + 3))
+    text = PngImagePlugin.PngInfo()
+    text.add_text("camera", "gate-2")
+    text.add_itxt("note", "frost at 05:30", lang="en")
+    Image.fromarray(sky).save(folder / "tagged.png", pnginfo=text, dpi=(300, 300),
+                              icc_profile=b"\x00\x00\x00\x20golden-icc" * 4)
+    rgba16 = np.dstack([sky.astype(np.uint16) * 257, alpha.astype(np.uint16) * 257])
+    tifffile.imwrite(folder / "rgba16.tif", rgba16, photometric="rgb", extrasamples=[2],
+                     description="probe 7, 05:30")
+    values = np.asarray(gate[:6, :8].astype(np.uint16) * 4 + 3, ">u2").tobytes()
+    (folder / "scan.pgm").write_bytes(b"P5\n# probe 7\n8 6\n1023\n" + values)
+    Image.fromarray(sky[:8, :8]).save(folder / "thumb.bmp")
+    Image.fromarray(sky[:8, :10]).save(folder / "leaf.webp", lossless=True)
+    (folder / "notes.txt").write_text("gate camera 2: lens cleaned 2026-11-30\n")
+    report(rowcast.compress([folder], GOLDEN / "golden-formats.rowcast",
+                            model=GOLDEN / "tiny.safetensors"))
 
 
 def report(summary) -> None:
     for e in summary.entries:
-        print(e["path"], e["method"], e["bytes"])
+        print(e["path"], e["kind"], e.get("format"), e["method"], e.get("parts"), e["bytes"])
 
 
 if __name__ == "__main__":
-    {"first": first, "tuned": tuned, "mixture": mixture, "packed": packed,
-     "adaptive": adaptive, "retuned": retuned, "compact": compact,
-     "streamed": streamed}[sys.argv[1]]()
+    {"formats": formats}[sys.argv[1]]()

@@ -16,6 +16,7 @@ from rowcast import family as fam
 from rowcast.codec import (
     Feedback,
     Tune,
+    as_rgb,
     base_prediction,
     decode_batch,
     encode_batch,
@@ -29,7 +30,6 @@ from rowcast.entropy import PayloadError
 from rowcast.family import row_activity
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.network import Predictor
-from rowcast.planes import as_rgb
 from rowcast.predictor import Engine, conv_reference
 from rowcast.quantize import export, model_from_bytes, to_bytes
 from rowcast.train import calibrate
@@ -276,15 +276,15 @@ def test_gray_images_are_coded_as_one_plane(default_engine, gray64):
     assert np.array_equal(symbols, image.reshape(-1))
 
 
-def test_uniform_noise_is_stored_and_never_grows_beyond_raw(tmp_path):
-    """Incompressible input falls back to storage: the entry is the raw pixels, and the whole
-    archive is raw size plus a fixed overhead of header, index and trailer."""
+def test_uniform_noise_is_kept_literal_and_never_grows_beyond_raw(tmp_path):
+    """Incompressible input falls back to the literal method: the entry is the raw values,
+    and the whole archive is raw size plus a fixed overhead of header, index and trailer."""
     rng = np.random.default_rng(9)
     noise = rng.integers(0, 256, (64, 64, 3), dtype=np.uint8)
     Image.fromarray(noise).save(tmp_path / "noise.png")
     summary = rowcast.compress([tmp_path / "noise.png"], tmp_path / "n.rowcast")
     (entry,) = summary.entries
-    assert entry["method"] == "stored" and entry["bytes"] == noise.size
+    assert entry["method"] == "literal" and entry["bytes"] == noise.size
     assert summary.archive_bytes <= noise.size + 200
 
 

@@ -1,58 +1,91 @@
 """What a user does, as Python functions: compress, decompress, verify, read_index.
 
-Each function takes paths, validates everything before writing anything, and raises a
+Every file under the inputs is accounted for: an image rowcast codes (`rowcast.imagefile`
+reads it at full depth, with its palette, transparency and metadata), a file kept byte for
+byte (JPEG, lossy WebP, anything that is not an image rowcast codes), or a file left out by
+the user's choice (`exclude`, or `leave_out` for files that cannot be kept), recorded in the
+archive with the reason. Each function validates before writing and raises a
 `RowcastError` whose message is one line naming the file and the reason.
 """
 
 from __future__ import annotations
 
+import fnmatch
+import hashlib
 import os
 import shutil
 import tempfile
-from collections import defaultdict
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, field
-from pathlib import Path, PurePosixPath
+from dataclasses import dataclass, field, replace
+from pathlib import Path
 
 import numpy as np
 
-from rowcast import archive, codec
+from rowcast import archive, entrycodec, imagefile
 from rowcast.archive import ArchiveError, Entry, IndexEntry, ModelIdentity
-from rowcast.entropy import PayloadError
+from rowcast.entrycodec import CodingError, Wanted
 from rowcast.errors import DataError, UsageError
-from rowcast.planes import PLANES, ImageError, checksum, probe, read_planes, to_image
+from rowcast.imagefile import ImageError
+from rowcast.picture import (
+    ExtrasError,
+    Picture,
+    checksum,
+    pack_picture_extras,
+    unpack_picture_extras,
+)
+from rowcast.pixelformats import BY_NAME
 from rowcast.predictor import Engine
 from rowcast.quantize import IntModel, ModelError, bundled_model, load_model
 
-IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif", ".ppm",
-                  ".pgm", ".pnm", ".tga"}
 DEFAULT_BATCH = 32
-ENCODE_PIXELS = 1 << 22  # a group being coded holds at most about this many pixels
+GROUP_IMAGES = 32  # images read and coded together while compressing
+GROUP_PIXELS = 1 << 22  # ... or at most about this many pixels
+STRIPPED = "metadata stripped (--strip-metadata)"
+UNWRITABLE = "an image that no container rowcast writes holds exactly; kept byte for byte"
 
 Progress = Callable[[int], None] | None  # called with the number of images or rows just done
 
 
 @dataclass(frozen=True)
+class Found:
+    """A file under the inputs and what will become of it: `action` is "image", "bytes",
+    "excluded" or "refused", with the reason for the last three."""
+
+    path: Path
+    name: str
+    action: str
+    reason: str = ""
+
+
+@dataclass(frozen=True)
 class Summary:
-    """What `compress` wrote: per-entry sizes and the model's cross-entropy."""
+    """What `compress` wrote: one row per entry, and the archive's size."""
 
     archive: Path
     model: ModelIdentity
     entries: list[dict] = field(default_factory=list)
     archive_bytes: int = 0
 
+    def count(self, kind: str) -> int:
+        return sum(1 for e in self.entries if e["kind"] == kind)
+
     @property
     def subpixels(self) -> int:
-        return sum(e["width"] * e["height"] * PLANES[e["mode"]] for e in self.entries)
+        return sum(e["subpixels"] for e in self.entries if e["kind"] == "image")
+
+    @property
+    def image_bytes(self) -> int:
+        """Bytes the coded images take: payloads and extras (metadata, palettes)."""
+        return sum(e["bytes"] for e in self.entries if e["kind"] == "image")
 
     @property
     def bits_per_subpixel(self) -> float:
-        return 8.0 * self.archive_bytes / max(1, self.subpixels)
+        return 8.0 * self.image_bytes / max(1, self.subpixels)
 
 
 @dataclass(frozen=True)
 class Check:
-    """The outcome of `verify`: the entries checked and one line per problem found."""
+    """The outcome of `verify`: entries decoded, and one line per problem found."""
 
     checked: int
     problems: list[str]
@@ -60,6 +93,26 @@ class Check:
     @property
     def ok(self) -> bool:
         return not self.problems
+
+
+@dataclass(frozen=True)
+class Restored:
+    """What `decompress` wrote, which entries failed (one line each), and which entries
+    were left out when the archive was made."""
+
+    written: list[Path]
+    failed: list[str]
+    left_out: list[IndexEntry]
+
+
+class RefusedError(DataError):
+    """Files that cannot be kept; `problems` has one line per file."""
+
+    def __init__(self, problems: list[str]) -> None:
+        more = f" (and {len(problems) - 1} more)" if len(problems) > 1 else ""
+        super().__init__(f"{problems[0]}{more}; pass --leave-out-refused to archive the rest "
+                         "and record these as left out")
+        self.problems = problems
 
 
 def _model(path: Path | str | None) -> IntModel:
@@ -74,127 +127,179 @@ def identity(model: IntModel) -> ModelIdentity:
     return ModelIdentity(model.name, model.sha256)
 
 
-def collect_inputs(inputs: Sequence[Path | str]) -> list[tuple[Path, str]]:
-    """(file, archive path) for every input: files as named, directories recursively.
+def _walk(root: Path) -> Iterator[tuple[Path, bool]]:
+    """(path, is a directory link) for every file under root, sorted, links not followed."""
+    for top, dirs, files in os.walk(root):
+        dirs.sort()
+        here = Path(top)
+        for name in sorted(files + [d for d in dirs if (here / d).is_symlink()]):
+            path = here / name
+            yield path, path.is_symlink() and path.is_dir()
+        dirs[:] = [d for d in dirs if not (here / d).is_symlink()]
 
-    A file keeps its own name; files under a directory keep their path relative to it.
-    Only image suffixes are taken from directories; a file named directly is always tried.
+
+def collect_inputs(inputs: Sequence[Path | str], exclude: Sequence[str] = ()) -> list[Found]:
+    """Every file under the inputs, with what will become of it (`Found`), by content.
+
+    A file named directly keeps its own name; files under a directory keep their path
+    relative to it. `exclude` holds glob patterns matched against that path and its last
+    component; a matching file is recorded as left out.
     """
-    found: list[tuple[Path, str]] = []
+    listed: list[tuple[Path, str, bool]] = []
     for raw in inputs:
         src = Path(raw)
         if src.is_dir():
-            for path in sorted(src.rglob("*")):
-                if path.is_file() and path.suffix.lower() in IMAGE_SUFFIXES:
-                    found.append((path, path.relative_to(src).as_posix()))
+            listed += [(p, p.relative_to(src).as_posix(), link) for p, link in _walk(src)]
         elif src.exists():
-            found.append((src, src.name))
+            listed.append((src, src.name, False))
         else:
             raise UsageError(f"{src}: no such file or directory")
-    seen: dict[str, Path] = {}
-    for path, name in found:
-        out = output_name(name)
-        if out in seen:
-            raise UsageError(f"{path}: would be restored as {out}, like {seen[out]}")
-        seen[out] = path
-    if not found:
-        raise UsageError(f"{', '.join(map(str, inputs))}: no images found")
+    if not listed:
+        raise UsageError(f"{', '.join(map(str, inputs))}: no files found")
+    found, seen = [], {}
+    for path, name, link in listed:
+        if name in seen:
+            raise UsageError(f"{path}: has the same archive name as {seen[name]}")
+        seen[name] = path
+        pattern = next((g for g in exclude if fnmatch.fnmatchcase(name, g)
+                        or fnmatch.fnmatchcase(path.name, g)), None)
+        if pattern is not None:
+            found.append(Found(path, name, "excluded", f"excluded by --exclude {pattern}"))
+        elif link:
+            found.append(Found(path, name, "refused", "a link to a directory"))
+        else:
+            try:
+                sniffed = imagefile.sniff(path)
+            except ImageError as exc:
+                found.append(Found(path, name, "refused", _reason(exc, path)))
+                continue
+            found.append(Found(path, name, sniffed.action, sniffed.reason))
     return found
 
 
-def output_name(path: str) -> str:
-    """Where an entry is restored, relative to the output directory: always a PNG."""
-    return str(PurePosixPath(path).with_suffix(".png"))
+def _reason(exc: Exception, path: Path) -> str:
+    """An ImageError's reason without the file name it starts with."""
+    text = str(exc)
+    prefix = f"{path}: "
+    return text[len(prefix):] if text.startswith(prefix) else text
 
 
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
-             force: bool = False, progress: Progress = None, tune: bool = True,
-             version: int = archive.VERSION) -> Summary:
-    """Compress image files and directories into one archive at `dest` (atomic).
+             force: bool = False, progress: Progress = None, exclude: Sequence[str] = (),
+             strip_metadata: bool = False, leave_out_refused: bool = False) -> Summary:
+    """Compress every file under the inputs into one archive at `dest` (atomic).
 
-    With `tune` (the default) each image may carry its own tuning (`tuning`) and feedback
-    gains (`feedback`). `version` is the format version to write: the newest unless readers
-    of an older rowcast need 5 (rowcast 0.5 to 0.7; tuning in headers of whole bytes), 4
-    (rowcast 0.4; gray images' tuning headers in full), 3
-    (rowcast 0.3; tuning without gains), 2 (rowcast 0.2) or 1 (rowcast 0.1; it has no
-    tuning, so none is done).
-
-    Every input is checked from its header first; then images are read and coded in
-    groups of up to 32 (or 4 megapixels), same-sized ones together, and written in input
-    order, so memory stays bounded however many there are.
+    Images are coded (`entrycodec`), other files kept as bytes; files matching `exclude`
+    are left out and recorded. Files that cannot be kept (CMYK, float, several frames,
+    unreadable) stop the run, all named in one `RefusedError`, unless `leave_out_refused`,
+    which records them as left out with the reason. `strip_metadata` drops every image's
+    metadata (palette and transparency stay: they are pixels). Images are read and coded in
+    groups, so memory stays bounded however many there are.
     """
     dest = Path(dest)
-    if version not in archive.VERSION_METHODS:
-        known = ", ".join(map(str, archive.VERSION_METHODS))
-        raise UsageError(f"{dest}: cannot write format version {version} (only {known})")
-    allowed = archive.VERSION_METHODS[version] if tune else ()
-    method = next((m for m in ("adaptive", "tuned") if m in allowed), "model")
     if dest.is_dir():
         raise UsageError(f"{dest}: is a directory")
-    if dest.exists() and not force:
+    if (dest.exists() or dest.is_symlink()) and not force:
         raise UsageError(f"{dest}: already exists (use --force to replace it)")
     if not dest.parent.is_dir():
         raise UsageError(f"{dest}: no such directory {dest.parent}")
-    files = collect_inputs(inputs)
-    for path, name in files:
+    found = collect_inputs(inputs, exclude)
+    for f in found:
         try:
-            archive.normalise_path(name)
+            archive.normalise_path(f.name)
         except ArchiveError as exc:
-            raise UsageError(f"{path}: cannot be stored under this name ({exc})") from None
-        _checked(probe, path)
+            raise UsageError(f"{f.path}: cannot be stored under this name ({exc})") from None
+    refused = [f"{f.path}: {f.reason}" for f in found if f.action == "refused"]
+    if refused and not leave_out_refused:
+        raise RefusedError(refused)
     net = _model(model)
     engine = Engine(net)
     rows: list[dict] = []
 
-    def coded_groups() -> Iterator[tuple[str, np.ndarray, str, codec.Coded]]:
-        """(name, planes, mode, coded) in input order, coded a group at a time."""
-        group: list[tuple[str, np.ndarray, str]] = []
-        pixels = 0
-        for i, (path, name) in enumerate(files):
-            planes, mode = _checked(read_planes, path)
-            group.append((name, planes, mode))
-            pixels += planes[0].size
-            if len(group) == DEFAULT_BATCH or pixels >= ENCODE_PIXELS or i == len(files) - 1:
-                by_shape: dict[tuple, list[int]] = defaultdict(list)
-                for j, (_, planes_j, _) in enumerate(group):
-                    by_shape[planes_j.shape].append(j)
-                coded: dict[int, codec.Coded] = {}
-                for members in by_shape.values():
-                    images = [group[j][1] for j in members]
-                    coded.update(zip(members, codec.encode_batch(
-                        engine, images, method, layout=archive.payload_layout(version)),
-                        strict=True))
-                for j, (name_j, planes_j, mode_j) in enumerate(group):
-                    yield name_j, planes_j, mode_j, coded[j]
-                group, pixels = [], 0
-
     def entries() -> Iterator[Entry]:
-        for name, planes, mode, coded in coded_groups():
-            raw = planes.tobytes()
-            method, payload = ((coded.method, coded.payload) if len(coded.payload) < len(raw)
-                               else ("stored", raw))
-            rows.append({"path": name, "mode": mode, "width": planes.shape[2],
-                         "height": planes.shape[1], "method": method, "bytes": len(payload),
-                         "cross_entropy_bits": coded.cross_entropy})
+        """Kept and left-out files at once; images a group at a time, coded together."""
+        group: list[tuple[Found, Picture]] = []
+        pixels = 0
+        for f in found:
+            if f.action == "bytes":
+                yield _kept(f, rows)
+            elif f.action != "image":
+                yield _left_out(f.name, f.reason, rows)
+            else:
+                try:
+                    picture = imagefile.read_picture(f.path)
+                except ImageError as exc:
+                    if not leave_out_refused:
+                        raise RefusedError([str(exc)]) from None
+                    yield _left_out(f.name, _reason(exc, f.path), rows)
+                    continue
+                if strip_metadata:
+                    picture = picture.without_metadata()
+                plan = imagefile.restored(f.name, picture)
+                if plan is None:
+                    yield _kept(replace(f, action="bytes", reason=UNWRITABLE), rows)
+                    continue
+                group.append((f, *plan))
+                pixels += picture.width * picture.height
+                if len(group) >= GROUP_IMAGES or pixels >= GROUP_PIXELS:
+                    yield from _coded(engine, group, strip_metadata, rows, progress)
+                    group, pixels = [], 0
+                continue
             if progress:
                 progress(1)
-            yield Entry(name, mode, planes.shape[2], planes.shape[1], method, checksum(planes),
-                        payload)
+        yield from _coded(engine, group, strip_metadata, rows, progress)
 
     try:
-        size = archive.write_archive(dest, identity(net), entries(), force=force,
-                                     version=version)
+        size = archive.write_archive(dest, identity(net), entries(), force=force)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
+    except OSError as exc:
+        raise DataError(f"{exc.filename or dest}: {exc.strerror or exc}") from None
     return Summary(dest, identity(net), rows, size)
 
 
-def _checked(read, path: Path):
-    """Run a planes reader, turning its refusal into a DataError."""
+def _coded(engine: Engine, group: list[tuple[Found, str, Picture]], stripped: bool,
+           rows: list[dict], progress: Progress) -> Iterator[Entry]:
+    """Archive entries of a group of pictures, coded together, in order; each is restored
+    under its name and picture from `imagefile.restored`."""
+    if not group:
+        return
+    coded = entrycodec.encode_pictures(engine, [p for _, _, p in group])
+    for (f, restore, picture), enc in zip(group, coded, strict=True):
+        extras = pack_picture_extras(picture)
+        kinds = tuple(k for k, _ in picture.extras)
+        size = len(enc.payload) + len(extras)
+        rows.append({"path": f.name, "kind": "image", "format": picture.format,
+                     "width": picture.width, "height": picture.height,
+                     "subpixels": picture.values.size, "method": enc.method,
+                     "parts": list(enc.parts), "bytes": size, "extras_bytes": len(extras),
+                     "cross_entropy_bits": enc.cross_entropy, "carries": list(kinds),
+                     "restore_as": restore if restore != f.name else None,
+                     "bits_per_subpixel": 8.0 * size / max(1, picture.values.size)})
+        if progress:
+            progress(1)
+        yield Entry(f.name, "image", picture.format, picture.width, picture.height, enc.method,
+                    checksum(picture.values, extras), enc.payload, extras,
+                    restore_as=restore if restore != f.name else None,
+                    reason=STRIPPED if stripped else "", carries=kinds, parts=enc.parts)
+
+
+def _kept(f: Found, rows: list[dict]) -> Entry:
+    """A file kept byte for byte."""
     try:
-        return read(path)
-    except ImageError as exc:
-        raise DataError(str(exc)) from None
+        data = f.path.read_bytes()
+    except OSError as exc:
+        raise DataError(f"{f.path}: cannot be read ({exc.strerror or exc})") from None
+    rows.append({"path": f.name, "kind": "file", "method": "bytes", "bytes": len(data),
+                 "reason": f.reason})
+    return Entry(f.name, "file", "", 0, 0, "bytes", hashlib.sha256(data).digest(), data,
+                 reason=f.reason)
+
+
+def _left_out(name: str, reason: str, rows: list[dict]) -> Entry:
+    rows.append({"path": name, "kind": "left out", "method": "none", "bytes": 0,
+                 "reason": reason})
+    return Entry(name, "left out", "", 0, 0, "none", bytes(32), b"", reason=reason)
 
 
 def read_index(src: Path | str) -> tuple[ModelIdentity, list[IndexEntry]]:
@@ -206,146 +311,200 @@ def read_index(src: Path | str) -> tuple[ModelIdentity, list[IndexEntry]]:
         return archive.read_index(src)
     except ArchiveError as exc:
         raise DataError(str(exc)) from None
+    except OSError as exc:
+        raise DataError(f"{src}: cannot be read ({exc.strerror or exc})") from None
 
 
-def decode_entries(src: Path | str, *, model: Path | str | None = None,
-                   batch: int = DEFAULT_BATCH, progress: Progress = None,
-                   only: Sequence[str] | None = None) -> Iterator[tuple[IndexEntry, np.ndarray]]:
-    """Decode an archive's entries (or those named in `only`), checking each checksum.
+Content = Picture | bytes | None  # an image, a file's bytes, nothing for a left-out file
 
-    Same-sized entries are decoded together in batches of `batch`. Yields (entry, planes).
-    """
-    src = Path(src)
-    ident, entries = read_index(src)
-    if only is not None:
-        wanted = set(only)
-        entries = [e for e in entries if e.path in wanted]
-    net = None
-    if any(e.method != "stored" for e in entries):
+
+def _contents(src: Path, ident: ModelIdentity, entries: list[IndexEntry],
+              model: Path | str | None, batch: int, progress: Progress
+              ) -> Iterator[tuple[IndexEntry, Content | DataError]]:
+    """Each entry's content, or the DataError that stops it (a damaged entry never stops
+    the others), in a chunk of entries at a time so memory stays bounded."""
+    engine = None
+    coded = [e for e in entries if e.kind == "image"]
+    if entrycodec.needs_engine([e.method for e in coded], [e.parts for e in coded]):
         net = (model is None and bundled_model(ident.sha256)) or _model(model)
         if net.sha256 != ident.sha256:
             raise UsageError(f"{src}: was made with model {ident.name} "
                              f"({ident.sha256.hex()[:12]}), not {net.name} "
                              f"({net.sha256.hex()[:12]}); pass that model with --model")
-    engine = Engine(net) if net is not None else None
-    groups: dict[tuple, list[IndexEntry]] = defaultdict(list)
-    for e in entries:  # coded entries of one size decode together, tuned or not
-        groups[(e.method == "stored", e.mode, e.height, e.width)].append(e)
-    for (stored, mode, height, width), members in groups.items():
-        planes = PLANES[mode]
-        for start in range(0, len(members), batch):
-            part = members[start : start + batch]
-            payloads = [_payload(src, e) for e in part]
-            if stored:
-                decoded = [_stored(src, e, p, planes) for e, p in zip(part, payloads, strict=True)]
+        engine = Engine(net)
+    chunk = max(batch, 256)
+    for start in range(0, len(entries), chunk):
+        part = entries[start : start + chunk]
+        images = [e for e in part if e.kind == "image"]
+        wanted, extras, early = [], {}, {}
+        for e in images:
+            try:
+                payload = archive.read_payload(src, e)
+                extras[id(e)] = archive.read_extras(src, e) if e.extras_length else b""
+                wanted.append(Wanted(BY_NAME[e.format], e.width, e.height, e.method, payload,
+                                     e.layout))
+            except ArchiveError as exc:
+                early[id(e)] = DataError(str(exc))
+                wanted.append(None)
+        todo = [w for w in wanted if w is not None]
+        values = iter(entrycodec.decode_values(engine, todo, batch=batch, progress=progress))
+        decoded = {id(e): (early[id(e)] if w is None else next(values))
+                   for e, w in zip(images, wanted, strict=True)}
+        for e in part:
+            if e.kind == "image":
+                yield e, _picture(src, e, decoded[id(e)], extras.get(id(e), b""))
+            elif e.kind == "file":
+                yield e, _file_bytes(src, e)
             else:
-                try:
-                    decoded = codec.decode_batch(engine, payloads, planes, height, width,
-                                                 progress=progress,
-                                                 methods=[e.method for e in part],
-                                                 layout=_layout(part[0]))
-                except (PayloadError, ValueError, RuntimeError) as exc:
-                    raise _undecodable(src, engine, part, payloads, planes, exc) from None
-            for e, planes_out in zip(part, decoded, strict=True):
-                if checksum(planes_out) != e.checksum:
-                    raise DataError(f"{src}: {e.path} decodes to pixels whose checksum differs")
-                yield e, planes_out
+                yield e, None
 
 
-def _undecodable(src: Path, engine: Engine, part: list[IndexEntry], payloads: list[bytes],
-                 planes: int, batch_error: Exception) -> DataError:
-    """The error for a batch that failed to decode, naming the entry at fault: each entry
-    is decoded alone until one fails (all are named if none fails alone)."""
-    for e, payload in zip(part, payloads, strict=True):
-        try:
-            codec.decode_batch(engine, [payload], planes, e.height, e.width, workers=1,
-                               methods=[e.method], layout=_layout(e))
-        except (PayloadError, ValueError, RuntimeError) as exc:
-            return DataError(f"{src}: cannot decode {e.path} ({exc})")
-    names = ", ".join(e.path for e in part)
-    return DataError(f"{src}: cannot decode {names} ({batch_error})")
-
-
-def _layout(entry: IndexEntry) -> str:
-    """How an entry's payload carries its tuning, by its archive's format version."""
-    return archive.payload_layout(entry.version)
-
-
-def _payload(src: Path, entry: IndexEntry) -> bytes:
+def _picture(src: Path, e: IndexEntry, values, extras: bytes) -> Picture | DataError:
+    if isinstance(values, DataError):
+        return values
+    if isinstance(values, CodingError):
+        return DataError(f"{src}: cannot decode {e.path} ({values})")
+    if checksum(values, extras) != e.checksum:
+        return DataError(f"{src}: {e.path} decodes to values whose checksum differs")
+    if e.version < archive.VERSION:  # formats 1 to 6 kept pixels only, restored as PNG
+        return Picture(values, e.format)
     try:
-        return archive.read_payload(src, entry)
+        container, kept = unpack_picture_extras(extras)
+    except ExtrasError as exc:
+        return DataError(f"{src}: {e.path}: {exc}")
+    return Picture(values, e.format, kept, container)
+
+
+def _file_bytes(src: Path, e: IndexEntry) -> bytes | DataError:
+    try:
+        data = archive.read_payload(src, e)
     except ArchiveError as exc:
-        raise DataError(str(exc)) from None
+        return DataError(str(exc))
+    if hashlib.sha256(data).digest() != e.checksum:
+        return DataError(f"{src}: {e.path}: bytes whose checksum differs")
+    return data
 
 
-def _stored(src: Path, entry: IndexEntry, payload: bytes, planes: int) -> np.ndarray:
-    if len(payload) != planes * entry.height * entry.width:
-        raise DataError(f"{src}: {entry.path} has a stored payload of the wrong length")
-    return np.frombuffer(payload, np.uint8).reshape(planes, entry.height, entry.width)
+def decode_entries(src: Path | str, *, model: Path | str | None = None,
+                   batch: int = DEFAULT_BATCH, progress: Progress = None,
+                   only: Sequence[str] | None = None) -> Iterator[tuple[IndexEntry, Content]]:
+    """Decode an archive's entries (or those named in `only`), checking each checksum:
+    (entry, Picture) for images, (entry, bytes) for kept files, (entry, None) for files
+    left out. Raises DataError at the first entry that does not decode."""
+    src = Path(src)
+    ident, entries = read_index(src)
+    if only is not None:
+        wanted = set(only)
+        entries = [e for e in entries if e.path in wanted]
+    for e, content in _contents(src, ident, entries, model, batch, progress):
+        if isinstance(content, DataError):
+            raise content
+        yield e, content
 
 
 def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None = None,
                force: bool = False, batch: int = DEFAULT_BATCH,
-               progress: Progress = None) -> list[Path]:
-    """Restore every entry as a PNG under `outdir`; all or nothing.
-
-    Files are decoded into a staging folder inside `outdir` and moved into place only
-    when every entry has decoded and matched its checksum.
-    """
-    outdir = Path(outdir)
+               progress: Progress = None) -> Restored:
+    """Restore every entry that decodes under `outdir`, each under its path (images in
+    their own container where it can hold them exactly, else as PNG under the recorded
+    name), and name each one that does not. Entries are decoded into a staging folder
+    inside `outdir` and moved into place at the end."""
+    src, outdir = Path(src), Path(outdir)
     if outdir.exists() and not outdir.is_dir():
         raise UsageError(f"{outdir}: not a directory")
-    _, entries = read_index(src)
-    targets = [outdir / output_name(e.path) for e in entries]
-    clashes = [t for t in targets if t.exists()]
+    ident, entries = read_index(src)
+    kept = [e for e in entries if e.kind != "left out"]
+    targets = {e.path: outdir / e.restored_path for e in kept}
+    clashes = [t for t in targets.values() if t.exists() or t.is_symlink()]
     if clashes and not force:
         raise UsageError(f"{clashes[0]}: already exists (use --force to replace it)")
+    made = not outdir.exists()
     outdir.mkdir(parents=True, exist_ok=True)
     stage = Path(tempfile.mkdtemp(prefix=".rowcast-", dir=outdir))
+    failed, ready = [], []
     try:
-        for e, planes in decode_entries(src, model=model, batch=batch, progress=progress):
-            tmp = stage / output_name(e.path)
+        for e, content in _contents(src, ident, kept, model, batch, progress):
+            if isinstance(content, DataError):
+                failed.append(str(content))
+                continue
+            tmp = stage / e.restored_path
             tmp.parent.mkdir(parents=True, exist_ok=True)
-            to_image(planes, e.mode).save(tmp, format="PNG")
+            try:
+                if isinstance(content, Picture):
+                    imagefile.write_picture(content, tmp)
+                else:
+                    tmp.write_bytes(content)
+            except ImageError as exc:
+                failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
+                continue
+            ready.append(e)
         written = []
-        for e, target in zip(entries, targets, strict=True):
+        for e in ready:
+            target = targets[e.path]
             target.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(stage / output_name(e.path), target)
+            os.replace(stage / e.restored_path, target)
             written.append(target)
-        return written
     finally:
         shutil.rmtree(stage, ignore_errors=True)
+        if made and not any(outdir.iterdir()):
+            outdir.rmdir()
+    return Restored(written, failed, [e for e in entries if e.kind == "left out"])
 
 
 def verify(src: Path | str, *, against: Path | str | None = None,
            model: Path | str | None = None, batch: int = DEFAULT_BATCH,
            progress: Progress = None) -> Check:
-    """Decode everything and check each checksum, and every pixel against `against` if given.
-
-    With `against`, every image under that directory must be in the archive too, so that
-    a verified archive can stand in for the directory.
-    """
+    """Decode every entry and check its checksum; with `against`, also compare every
+    image's values at full depth, its palette, transparency and metadata, and every kept
+    file's bytes with the files there, and require every file there to be accounted for
+    (coded, kept, or recorded as left out)."""
+    src = Path(src)
+    ident, entries = read_index(src)
     problems: list[str] = []
+    originals: dict[str, Path] = {}
+    if against is not None:
+        originals = {str(p.relative_to(against).as_posix()): p for p, _ in _walk(Path(against))}
+        names = {e.path for e in entries}
+        problems += [f"{path}: not in the archive" for name, path in originals.items()
+                     if name not in names]
     checked = 0
-    originals = dict((name, path) for path, name in collect_inputs([against])) if against else {}
-    in_archive = {e.path for e in read_index(src)[1]}
-    problems += [f"{path}: not in the archive" for name, path in sorted(originals.items())
-                 if name not in in_archive]
-    try:
-        for e, planes in decode_entries(src, model=model, batch=batch, progress=progress):
-            checked += 1
-            if against is None:
-                continue
-            if e.path not in originals:
+    for e, content in _contents(src, ident, entries, model, batch, progress):
+        if isinstance(content, DataError):
+            problems.append(str(content))
+            continue
+        checked += 1
+        if against is None:
+            continue
+        if e.path not in originals:
+            if e.kind != "left out":
                 problems.append(f"{e.path}: not found under {against}")
-                continue
-            try:
-                orig, mode = read_planes(originals[e.path])
-            except ImageError as exc:
-                problems.append(str(exc))
-                continue
-            if mode != e.mode or not np.array_equal(orig, planes):
-                problems.append(f"{originals[e.path]}: pixels differ from the archive's {e.path}")
-    except DataError as exc:
-        problems.append(str(exc))
+            continue
+        problem = _compare(originals[e.path], e, content)
+        if problem:
+            problems.append(problem)
     return Check(checked, problems)
+
+
+def _compare(path: Path, e: IndexEntry, content: Content) -> str:
+    """A problem line if the original at `path` differs from the entry's content."""
+    if content is None:
+        return ""
+    if isinstance(content, bytes):
+        try:
+            same = path.read_bytes() == content
+        except OSError as exc:
+            return f"{path}: cannot be read ({exc.strerror or exc})"
+        return "" if same else f"{path}: bytes differ from the archive's {e.path}"
+    try:
+        original = imagefile.read_picture(path)
+    except ImageError as exc:
+        return str(exc)
+    if e.reason == STRIPPED:
+        original = original.without_metadata()
+    if original.format != content.format:
+        return (f"{path}: is {original.format}, the archive's {e.path} is {content.format}")
+    if not np.array_equal(original.values, content.values):
+        return f"{path}: pixels differ from the archive's {e.path}"
+    if original.extras != content.extras:
+        return f"{path}: palette, transparency or metadata differ from the archive's {e.path}"
+    return ""

@@ -17,9 +17,9 @@ import typer
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-from rowcast import api, archive
+from rowcast import api, imagefile
 from rowcast.errors import RowcastError, UsageError
-from rowcast.planes import PLANES
+from rowcast.pixelformats import subpixels
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
                   help="Lossless compression of small camera images with a learned predictor.")
@@ -72,38 +72,94 @@ def _bar(label: str, total: int, quiet: bool) -> Iterator:
 
 
 def _rows_total(entries) -> int:
-    return sum(e.height for e in entries if e.method != "stored")
+    return sum(e.height for e in entries if e.kind == "image")
+
+
+def _refused(exc: api.RefusedError) -> None:
+    """Every file that cannot be kept, a line each, then the error line."""
+    for line in exc.problems:
+        err.print(f"rowcast: {line}", markup=False)
+    count = len(exc.problems)
+    err.print(f"rowcast: error: {count} file{'s' if count > 1 else ''} cannot be kept; pass "
+              "--leave-out-refused to archive the rest and record these as left out",
+              markup=False)
+    raise typer.Exit(exc.exit_code)
 
 
 @app.command()
 def compress(
-    inputs: Annotated[list[Path], typer.Argument(help="Image files and/or directories.")],
+    inputs: Annotated[list[Path], typer.Argument(help="Files and/or directories.")],
     output: Annotated[Path, typer.Option("--output", "-o", help="Archive to write.")],
     model: ModelOpt = None,
     force: Annotated[bool, typer.Option("--force", help="Replace an existing archive.")] = False,
+    exclude: Annotated[list[str] | None, typer.Option(
+        "--exclude", metavar="GLOB", help="Leave out files whose path or name matches "
+        "(recorded in the archive as left out); repeatable.")] = None,
+    strip_metadata: Annotated[bool, typer.Option(
+        "--strip-metadata", help="Drop ICC, EXIF, XMP, text and other metadata (palettes "
+        "and transparency stay).")] = False,
+    leave_out_refused: Annotated[bool, typer.Option(
+        "--leave-out-refused", help="Archive everything else when some files cannot be "
+        "kept, and record those as left out with the reason.")] = False,
     quiet: QuietOpt = False,
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
-    format_version: Annotated[int, typer.Option(
-        "--format-version", help="Archive format to write: 6, or 5, 4, 3, 2, 1 so "
-        "that rowcast 0.7, 0.4, 0.3, 0.2, 0.1 can read it (larger archives).")] = archive.VERSION,
 ) -> None:
-    """Compress images into one archive."""
+    """Compress every file under the inputs into one archive: images coded, other files
+    kept as bytes."""
     with _guard(threads):
-        total = len(api.collect_inputs(inputs))
-        with _bar("compressing", total, quiet or as_json) as tick:
-            summary = api.compress(inputs, output, model=model, force=force, progress=tick,
-                                   version=format_version)
+        try:
+            found = api.collect_inputs(inputs, exclude or ())
+            with _bar("compressing", len(found), quiet or as_json) as tick:
+                summary = api.compress(inputs, output, model=model, force=force,
+                                       progress=tick, exclude=exclude or (),
+                                       strip_metadata=strip_metadata,
+                                       leave_out_refused=leave_out_refused)
+        except api.RefusedError as exc:
+            _refused(exc)
         if as_json:
             out.print(json.dumps({"archive": str(summary.archive), "bytes": summary.archive_bytes,
+                                  "images": summary.count("image"),
+                                  "files_kept": summary.count("file"),
+                                  "left_out": summary.count("left out"),
+                                  "image_bytes": summary.image_bytes,
+                                  "subpixels": summary.subpixels,
                                   "bits_per_subpixel": summary.bits_per_subpixel,
                                   "model": summary.model.name, "entries": summary.entries}),
                       markup=False)
         elif not quiet:
-            raw = summary.subpixels
-            out.print(f"{output}: {len(summary.entries)} images, {raw} bytes of pixels -> "
-                      f"{summary.archive_bytes} bytes ({summary.bits_per_subpixel:.3f} bits per "
-                      f"subpixel, model {summary.model.name})", markup=False)
+            _summary(output, summary)
+
+
+def _plural(count: int, word: str) -> str:
+    if count == 1:
+        return f"{count} {word}"
+    return f"{count} {word[:-1]}ies" if word.endswith("y") else f"{count} {word}s"
+
+
+def _summary(output: Path, summary: api.Summary) -> None:
+    images = summary.count("image")
+    out.print(f"{output}: {summary.archive_bytes} bytes, model {summary.model.name}",
+              markup=False)
+    if images:
+        out.print(f"  {_plural(images, 'image')} coded: {summary.subpixels} subpixels -> "
+                  f"{summary.image_bytes} bytes ({summary.bits_per_subpixel:.3f} bits per "
+                  "subpixel, metadata included)", markup=False)
+    for kind, label in (("file", "kept as bytes"), ("left out", "left out")):
+        rows = [e for e in summary.entries if e["kind"] == kind]
+        if rows:
+            out.print(f"  {_plural(len(rows), 'file')} {label}:", markup=False)
+            for e in rows:
+                out.print(f"    {e['path']} ({e['reason']})", markup=False)
+
+
+def _describe_kinds(kinds) -> str:
+    names = []
+    for kind in kinds:
+        name = imagefile.describe(kind)
+        if name not in names:
+            names.append(name)
+    return ",".join(names) or "-"
 
 
 @app.command("list")
@@ -114,22 +170,38 @@ def list_(
     """List an archive's entries without decoding them."""
     with _guard(None):
         ident, entries = api.read_index(archive)
-        rows = [{"path": e.path, "width": e.width, "height": e.height, "mode": e.mode,
-                 "bytes": e.length, "method": e.method,
-                 "bits_per_subpixel": 8.0 * e.length / (e.width * e.height * PLANES[e.mode])}
-                for e in entries]
+        rows = []
+        for e in entries:
+            size = e.length + e.extras_length
+            values = subpixels(e.format, e.width, e.height) if e.kind == "image" else 0
+            rows.append({"path": e.path, "kind": e.kind, "format": e.format or None,
+                         "width": e.width, "height": e.height, "bytes": size,
+                         "extras_bytes": e.extras_length, "method": e.method,
+                         "parts": list(e.parts), "carries": list(e.carries),
+                         "restore_as": e.restore_as, "reason": e.reason or None,
+                         "bits_per_subpixel": 8.0 * size / values if values else None})
         if as_json:
             out.print(json.dumps({"model": ident.name, "model_sha256": ident.sha256.hex(),
                                   "entries": rows}), markup=False)
             return
         out.print(f"model {ident.name} sha256 {ident.sha256.hex()[:16]}", markup=False)
         width = max([len(r["path"]) for r in rows] + [4])
-        out.print(f"{'path':<{width}}  {'width':>5} {'height':>6} {'mode':<4} {'bytes':>8} "
-                  f"{'bpsp':>6}  method", markup=False)
-        for r in rows:
-            out.print(f"{r['path']:<{width}}  {r['width']:>5} {r['height']:>6} {r['mode']:<4} "
-                      f"{r['bytes']:>8} {r['bits_per_subpixel']:>6.3f}  {r['method']}",
-                      markup=False)
+        out.print(f"{'path':<{width}}  {'format':<7} {'width':>5} {'height':>6} {'bytes':>8} "
+                  f"{'bpsp':>6}  {'method':<16} carries", markup=False)
+        for r, e in zip(rows, entries, strict=True):
+            if e.kind == "image":
+                method = "+".join(r["parts"]) if e.method == "coded" else e.method
+                note = _describe_kinds(e.carries)
+                if e.restore_as:
+                    note += f"; restored as {e.restore_as}"
+                out.print(f"{r['path']:<{width}}  {e.format:<7} {e.width:>5} {e.height:>6} "
+                          f"{r['bytes']:>8} {r['bits_per_subpixel']:>6.3f}  {method:<16} {note}",
+                          markup=False)
+            else:
+                label = "file" if e.kind == "file" else "-"
+                method = "kept" if e.kind == "file" else "left out"
+                out.print(f"{r['path']:<{width}}  {label:<7} {'':>5} {'':>6} {r['bytes']:>8} "
+                          f"{'':>6}  {method:<16} {e.reason}", markup=False)
 
 
 @app.command()
@@ -142,28 +214,38 @@ def decompress(
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
 ) -> None:
-    """Restore every image as a PNG, with the same relative paths and the same pixels."""
+    """Restore every file under its path: images with the same values, palette,
+    transparency and metadata, kept files byte for byte."""
     with _guard(threads):
         _, entries = api.read_index(archive)
         with _bar("decoding rows", _rows_total(entries), quiet) as tick:
-            written = api.decompress(archive, output, model=model, force=force, batch=batch,
-                                     progress=tick)
+            restored = api.decompress(archive, output, model=model, force=force, batch=batch,
+                                      progress=tick)
+        for line in restored.failed:
+            err.print(f"rowcast: {line}", markup=False)
         if not quiet:
-            out.print(f"{output}: restored {len(written)} images", markup=False)
+            out.print(f"{output}: restored {_plural(len(restored.written), 'file')}", markup=False)
+            for e in restored.left_out:
+                out.print(f"  not restored, left out when archived: {e.path} ({e.reason})",
+                          markup=False)
+        if restored.failed:
+            err.print(f"rowcast: error: {_plural(len(restored.failed), 'entry')} could not be "
+                      "restored", markup=False)
+            raise typer.Exit(1)
 
 
 @app.command()
 def verify(
     archive: Annotated[Path, typer.Argument(help="Archive to check.")],
-    against: Annotated[Path | None, typer.Option("--against", help="Compare every pixel with "
-                                                 "the images in this directory.")] = None,
+    against: Annotated[Path | None, typer.Option("--against", help="Compare every file with "
+                                                 "those in this directory.")] = None,
     model: ModelOpt = None,
     quiet: QuietOpt = False,
     as_json: JsonOpt = False,
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
 ) -> None:
-    """Decode everything; exit 0 only if every checksum (and every pixel) matches."""
+    """Decode everything; exit 0 only if every checksum (and every file) matches."""
     with _guard(threads):
         if against is not None and not against.is_dir():
             raise UsageError(f"{against}: not a directory (--against)")
@@ -178,7 +260,8 @@ def verify(
                 err.print(f"rowcast: {line}", markup=False)
             if not quiet and check.ok:
                 what = f"and identical to {against}" if against else "checksums match"
-                out.print(f"{archive}: {check.checked} images decoded, {what}", markup=False)
+                out.print(f"{archive}: {_plural(check.checked, 'entry')} decoded, {what}",
+                          markup=False)
         if not check.ok:
             raise typer.Exit(1)
 

@@ -17,7 +17,6 @@ import numpy as np
 from rowcast import entropy, feedback, tuning
 from rowcast import family as fam
 from rowcast.family import base_prediction
-from rowcast.planes import as_rgb
 from rowcast.predictor import Engine
 from rowcast.tables import (
     LENGTH_ONE,
@@ -44,6 +43,11 @@ PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (en
 # 5); "streamed": the tuning fields range-coded ahead of the pixels under fixed priors
 # (`tuning.fields`) and the coder's ending trimmed (`entropy.finish`), format 6 on.
 LAYOUTS = ("full", "compact", "streamed")
+
+
+def as_rgb(planes: np.ndarray) -> np.ndarray:
+    """Three planes for the network: gray is repeated, RGB is unchanged."""
+    return planes if planes.shape[0] == 3 else np.repeat(planes, 3, axis=0)
 
 
 @dataclass(frozen=True)
