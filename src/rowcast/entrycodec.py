@@ -152,7 +152,9 @@ def literal_of(picture: Picture) -> bytes:
 
 
 def _interleaved(values: np.ndarray) -> np.ndarray:
-    return values[0] if values.shape[0] == 1 else np.ascontiguousarray(values.transpose(1, 2, 0))
+    """(H, W) or (H, W, P) with fresh strides: imagecodecs refuses the odd strides that
+    numpy leaves on axes of length 1 of a view it calls contiguous."""
+    return (values[0] if values.shape[0] == 1 else values.transpose(1, 2, 0)).copy()
 
 
 def png_of(picture: Picture) -> bytes:
