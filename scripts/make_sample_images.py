@@ -1,23 +1,31 @@
 """Generate sample_images/: invented thumbnails from the Larkspur Hollow Growers' cameras.
 
-Every image is synthesised procedurally with fixed seeds, so the pixel data is reproducible.
+Every file is synthesised procedurally with fixed seeds, so the data is reproducible: 8-bit
+camera views, and beside them what else a sensor folder holds (16-bit thermal and
+multispectral frames, an alpha overlay, a palette map, text chunks, a TIFF and two sidecars).
 Usage: python scripts/make_sample_images.py [OUTDIR]
 """
 
 from __future__ import annotations
 
+import io
+import json
 import sys
 import zlib
 from collections.abc import Callable
 from functools import partial
 from pathlib import Path
 
+import imagecodecs
 import numpy as np
+import tifffile
 from numpy.typing import NDArray
-from PIL import Image
+from PIL import Image, UnidentifiedImageError
+from PIL.PngImagePlugin import PngInfo
 
 Arr = NDArray[np.float64]
 Recipe = Callable[[np.random.Generator], NDArray[np.uint8]]
+Maker = Callable[[np.random.Generator], bytes]
 
 APPLE = np.array([196.0, 38.0, 30.0])
 PEAR = np.array([186.0, 180.0, 66.0])
@@ -337,18 +345,292 @@ def catalogue() -> list[tuple[str, Recipe]]:
     return items
 
 
+def warmth(hour: float) -> float:
+    """How far the soil has warmed through the day: 0 before dawn, 1 at 14:00."""
+    return float(np.clip(np.sin((hour - 6.0) / 16.0 * np.pi), 0.0, 1.0))
+
+
+def soil_temperature(site: str, hour: float) -> Arr:
+    """Noise-free 64x48 soil surface temperature (degrees C) around a moisture probe's stake."""
+    h, w = 48, 64
+    srng = rng_for(site)
+    yy, xx = grid(h, w)
+    day = warmth(hour)
+    clods = fbm(srng, h, w, 6)
+    furrow = np.exp(-(((yy - 0.6 * h - 0.15 * (xx - w / 2)) / 5.0) ** 2))
+    temp = 4.0 + 20.0 * day + (1.5 + 4.0 * day) * (clods - 0.5) - (1.0 + 3.0 * day) * furrow
+    stake = np.clip(3.5 - np.hypot(xx - 40.0, yy - 20.0), 0.0, 1.0)
+    cable = segment(xx, yy, (40.0, 20.0), (63.0, 9.0), 1.2)
+    temp = temp * (1 - stake) + stake * (2.0 + 34.0 * day)
+    temp = temp * (1 - cable) + cable * (3.0 + 26.0 * day)
+    return blur(temp)
+
+
+def thermal_frame(rng: np.random.Generator, site: str, hour: float) -> NDArray[np.uint16]:
+    """16-bit thermal frame in centikelvin (0 C = 27315), with 0.04 K sensor noise."""
+    centi = 27315.0 + 100.0 * soil_temperature(site, hour)
+    noisy = centi + rng.normal(0.0, 4.0, centi.shape)
+    return np.clip(np.rint(noisy), 0, 65535).astype(np.uint16)
+
+
+def raw_counts(rng: np.random.Generator, site: str, hour: float) -> NDArray[np.uint16]:
+    """The thermal core's raw readout: 12-bit counts above a dark offset of 512 (512..4607)."""
+    counts = 512.0 + 90.0 * (soil_temperature(site, hour) + 2.0)
+    noisy = counts + rng.normal(0.0, 5.0, counts.shape)
+    return np.clip(np.rint(noisy), 512, 512 + 4095).astype(np.uint16)
+
+
+def canopy_bands(rng: np.random.Generator, site: str, hour: float) -> NDArray[np.uint16]:
+    """Top-down 64x48 multispectral view (near-infrared, red, green) in linear 16-bit counts."""
+    h, w = 48, 64
+    srng = rng_for(site)
+    yy, xx = grid(h, w)
+    level = daylight(hour)[2]
+    sun = np.array([np.clip((hour - 12.0) / 6.0, -1.0, 1.0), -0.5])
+    soil = np.array([0.28, 0.20, 0.16]) * (0.8 + 0.4 * fbm(srng, h, w, 5))[..., None]
+    grass = np.array([0.36, 0.07, 0.13]) * (0.8 + 0.4 * fbm(srng, h, w, 3))[..., None]
+    refl = soil + (grass - soil) * smoothstep(fbm(srng, h, w, 8) * 2.0 - 0.6)[..., None]
+    shadow = np.zeros((h, w))
+    crown = np.zeros((h, w))
+    shade = np.ones((h, w))
+    edge, leaves = fbm(srng, h, w, 3), fbm(srng, h, w, 2, octaves=3)
+    for row_y in (11.0, 36.0):
+        for col_x in np.arange(srng.uniform(-6, 4), w + 12, 17.0):
+            cx, cy = col_x + srng.uniform(-2, 2), row_y + srng.uniform(-2, 2)
+            r = 8.0 * srng.uniform(0.85, 1.15)
+            dx, dy = (xx - cx) / r, (yy - cy) / r
+            cover = np.clip((1 - np.hypot(dx, dy) - 0.4 * (edge - 0.5)) * r + 0.5, 0.0, 1.0)
+            sx, sy = (xx - cx + 4 * sun[0]) / r, (yy - cy + 4 * sun[1]) / r
+            shadow = np.maximum(shadow, np.clip((1 - np.hypot(sx, sy)) * r + 0.5, 0.0, 1.0))
+            shade = np.where(cover > crown, 0.75 - 0.25 * (dx * sun[0] + dy * sun[1]), shade)
+            crown = np.maximum(crown, cover)
+    leaf = np.array([0.50, 0.05, 0.12]) * (0.6 + 0.8 * leaves)[..., None] * shade[..., None]
+    refl = refl * (1 - 0.6 * shadow * (1 - crown))[..., None]
+    refl = refl * (1 - crown[..., None]) + leaf * crown[..., None]
+    signal = 1024.0 + 52000.0 * level * blur(refl)
+    noisy = signal + rng.normal(0.0, 1.0, signal.shape) * (0.5 * np.sqrt(signal) + 6.0)
+    return np.clip(np.rint(noisy), 0, 65535).astype(np.uint16)
+
+
+GLYPHS = {
+    "0": ("###", "#.#", "#.#", "#.#", "###"),
+    "1": (".#.", "##.", ".#.", ".#.", "###"),
+    "2": ("###", "..#", "###", "#..", "###"),
+    "3": ("###", "..#", ".##", "..#", "###"),
+    "4": ("#.#", "#.#", "###", "..#", "..#"),
+    "5": ("###", "#..", "###", "..#", "###"),
+    "6": ("###", "#..", "###", "#.#", "###"),
+    "7": ("###", "..#", ".#.", ".#.", ".#."),
+    "8": ("###", "#.#", "###", "#.#", "###"),
+    "9": ("###", "#.#", "###", "..#", "###"),
+    ":": ("...", ".#.", "...", ".#.", "..."),
+}
+
+
+def text_mask(text: str) -> NDArray[np.bool_]:
+    """A 5-pixel-high bitmap of digits and colons, one blank column between characters."""
+    glyphs = [np.array([[c == "#" for c in row] for row in GLYPHS[ch]]) for ch in text]
+    gap = np.zeros((5, 1), bool)
+    return np.hstack([part for glyph in glyphs for part in (gap, glyph)][1:])
+
+
+def gate_overlay(rng: np.random.Generator, stamp: str) -> NDArray[np.uint8]:
+    """RGBA 64x64 overlay for the gate camera: timestamp box, watch zone, motion-ignore band.
+
+    Fully transparent pixels keep the amber the overlay was painted with (slightly uneven, as
+    an editor leaves it), so their colour is data too.
+    """
+    size = 64
+    yy, xx = grid(size, size)
+    amber = np.array([255.0, 176.0, 0.0])
+    rgb = amber - np.stack([np.zeros_like(xx), xx, 2 * yy], axis=-1) * 0.5
+    rgb += rng.integers(-3, 4, rgb.shape)
+    alpha = np.zeros((size, size))
+
+    zone = (np.abs(xx - 32) <= 20) & (np.abs(yy - 36) <= 16)
+    border = zone & ((np.abs(xx - 32) >= 20) | (np.abs(yy - 36) >= 16))
+    alpha = np.where(border, 200, alpha)
+    band = (yy >= 21) & (yy <= 27)
+    hatch = band & ((xx + yy) % 4 < 2)
+    rgb = np.where(band[..., None], [70.0, 110.0, 230.0], rgb)
+    alpha = np.where(band, np.where(hatch, 110, 48), alpha)
+
+    box = (yy >= 55) & (yy <= 62) & (xx >= 1) & (xx <= 24)
+    rgb = np.where(box[..., None], 0.0, rgb)
+    alpha = np.where(box, 150, alpha)
+    glyphs = text_mask(stamp)
+    text = np.zeros((size, size), bool)
+    text[57 : 57 + glyphs.shape[0], 3 : 3 + glyphs.shape[1]] = glyphs
+    rgb = np.where(text[..., None], 255.0, rgb)
+    alpha = np.where(text, 255, alpha)
+    return np.dstack([np.clip(rgb, 0, 255), alpha]).astype(np.uint8)
+
+
+PLOT_PALETTE = [
+    (250, 248, 240),  # 0: outside the cooperative's land (transparent through tRNS)
+    (92, 64, 40),  # 1: boundary fence
+    (214, 190, 140),  # 2: tracks
+    (196, 38, 30),  # 3: apple, Braeburn
+    (230, 120, 40),  # 4: apple, Gala
+    (170, 70, 90),  # 5: apple, Cox
+    (186, 180, 66),  # 6: pear, Conference
+    (120, 30, 60),  # 7: cherry
+    (110, 70, 150),  # 8: plum
+    (150, 210, 120),  # 9: young planting
+    (60, 120, 200),  # 10: irrigation pond
+    (128, 128, 128),  # 11: packing shed
+]
+
+
+def plot_map(rng: np.random.Generator) -> NDArray[np.uint8]:
+    """Palette indices (into PLOT_PALETTE) of a 64x64 map of the cooperative's orchard plots."""
+    size = 64
+    yy, xx = grid(size, size)
+    wobble = 6.0 * (fbm(rng, size, size, 16, octaves=2) - 0.5)
+    reach = 29 * np.hypot((xx - 32) / 30, (yy - 32) / 27) + wobble
+    inside, fence = reach < 29, reach >= 27.6
+    row, col = (yy.astype(int) - 6) // 13, (xx.astype(int) - 3) // 12
+    plots = rng.integers(3, 10, (4, 5))[np.clip(row, 0, 3), np.clip(col, 0, 4)]
+    tracks = ((yy.astype(int) - 6) % 13 < 2) | ((xx.astype(int) - 3) % 12 < 2)
+    index = np.where(tracks, 2, plots)
+    index = np.where(np.hypot(xx - 48, yy - 46) < 6.5, 10, index)
+    index = np.where((np.abs(xx - 15) <= 3) & (np.abs(yy - 48) <= 2), 11, index)
+    index = np.where(fence, 1, index)
+    return np.where(inside, index, 0).astype(np.uint8)
+
+
+def encode(image: Image.Image, fmt: str, **options: object) -> bytes:
+    """An image's file bytes in the given Pillow format."""
+    out = io.BytesIO()
+    image.save(out, format=fmt, **options)
+    return out.getvalue()
+
+
+def camera_png(rng: np.random.Generator, recipe: Recipe, tags: dict[str, object]) -> bytes:
+    """An 8-bit camera image as an optimised PNG, with any extra chunks given in tags."""
+    pixels = recipe(rng)
+    image = Image.fromarray(pixels)
+    assert image.mode == ("L" if pixels.ndim == 2 else "RGB")
+    return encode(image, "PNG", optimize=True, **tags)
+
+
+def sky_tags() -> dict[str, object]:
+    """tEXt, iTXt (UTF-8) and pHYs chunks that the ridge camera writes beside its pixels."""
+    info = PngInfo()
+    info.add_text("CameraId", "ridge-sky-02")
+    info.add_text("Exposure", "1/800 s, f/8, ISO 100")
+    info.add_itxt("Description", "Weather ridge at 10:00, 55 % cloud, 9 °C", lang="en")
+    return {"pnginfo": info, "dpi": (72, 72)}
+
+
+def deep_png(rng: np.random.Generator, frame: Callable[..., NDArray[np.uint16]]) -> bytes:
+    """A 16-bit gray or RGB frame as PNG, written by imagecodecs (Pillow truncates 16-bit RGB)."""
+    return bytes(imagecodecs.png_encode(frame(rng), level=9))
+
+
+def raw_tiff(rng: np.random.Generator) -> bytes:
+    """The soil probe's 14:00 raw frame as a 16-bit TIFF with a description and 2 mm pixels."""
+    out = io.BytesIO()
+    tifffile.imwrite(
+        out,
+        raw_counts(rng, "soil", 14.0),
+        photometric="minisblack",
+        resolution=(5, 5),
+        resolutionunit="CENTIMETER",
+        description="soil-probe thermal core, raw frame 14:00; 12-bit counts, dark offset 512",
+        software="make_sample_images.py",
+        metadata=None,
+    )
+    return out.getvalue()
+
+
+def probe_readings(rng: np.random.Generator) -> bytes:
+    """Invented soil-probe log: moisture and temperature at two depths every two hours, as JSON."""
+    readings = []
+    for hour in range(6, 20, 2):
+        for depth in (10, 30):
+            damp = np.exp(-depth / 15.0)
+            temp = 6.0 + 16.0 * warmth(hour - depth / 10.0) * damp + rng.normal(0.0, 0.1)
+            vwc = 0.34 - 0.004 * (hour - 6) * damp + rng.normal(0.0, 0.002)
+            readings.append(
+                {
+                    "time": f"{hour:02d}:00",
+                    "depth_cm": depth,
+                    "moisture_m3_m3": round(float(vwc), 3),
+                    "temperature_c": round(float(temp), 1),
+                }
+            )
+    log = {"probe": "soil-probe-1", "site": "orchard-north, row 3", "readings": readings}
+    return (json.dumps(log, indent=2) + "\n").encode()
+
+
+def overlay_png(rng: np.random.Generator) -> bytes:
+    """The gate camera's RGBA overlay as PNG (Pillow keeps the colour under alpha 0)."""
+    return encode(Image.fromarray(gate_overlay(rng, "04:45")), "PNG", optimize=True)
+
+
+def plot_map_png(rng: np.random.Generator) -> bytes:
+    """The plot map as a palette PNG whose index 0 is fully transparent (a tRNS chunk)."""
+    index = plot_map(rng)
+    image = Image.frombytes("P", (index.shape[1], index.shape[0]), index.tobytes())
+    image.putpalette([v for rgb in PLOT_PALETTE for v in rgb])
+    return encode(image, "PNG", optimize=True, transparency=0)
+
+
+def preview_jpeg(_: np.random.Generator, source: str) -> bytes:
+    """A quality-85 JPEG of a camera image, redrawn from the source's own recipe and seed."""
+    pixels = dict(catalogue())[source](rng_for(source))
+    return encode(Image.fromarray(pixels), "JPEG", quality=85)
+
+
+def files() -> list[tuple[str, Maker]]:
+    """Every sample file with the function that makes its bytes from the file's seed."""
+    tagged = {"weather-ridge/sky_1000.png": sky_tags}
+    items: list[tuple[str, Maker]] = [
+        (rel, partial(camera_png, recipe=recipe, tags=tagged[rel]() if rel in tagged else {}))
+        for rel, recipe in catalogue()
+    ]
+    for hour in (6, 14):
+        frame = partial(thermal_frame, site="soil", hour=hour)
+        items.append((f"soil-probe/thermal_{hour:02d}00.png", partial(deep_png, frame=frame)))
+    items.append(("soil-probe/raw_1400.tif", raw_tiff))
+    items.append(("soil-probe/readings.json", probe_readings))
+    for hour in (11, 15):
+        frame = partial(canopy_bands, site="canopy", hour=hour)
+        rel = f"canopy-multispectral/canopy_{hour:02d}00.png"
+        items.append((rel, partial(deep_png, frame=frame)))
+    items.append(("gate/overlay.png", overlay_png))
+    items.append(("maps/plot_map.png", plot_map_png))
+    source = "orchard-north/cam01_1200.png"
+    items.append(("orchard-north/preview.jpg", partial(preview_jpeg, source=source)))
+    return items
+
+
+COLOUR_TYPES = {0: "gray", 2: "RGB", 3: "palette", 4: "gray+alpha", 6: "RGBA"}
+
+
+def describe(data: bytes) -> str:
+    """A file's format, size and sample layout, read back from its bytes (PNG from its IHDR)."""
+    if data.startswith(b"\x89PNG\r\n\x1a\n"):
+        width, height = int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
+        return f"PNG {COLOUR_TYPES[data[25]]} {data[24]}-bit {width}x{height}"
+    try:
+        with Image.open(io.BytesIO(data)) as image:
+            return f"{image.format} {image.mode} {image.width}x{image.height}"
+    except UnidentifiedImageError:
+        return "not an image"
+
+
 def main(argv: list[str]) -> None:
-    """Write every catalogued image under OUTDIR (default: the repo's sample_images/)."""
+    """Write every sample file under OUTDIR (default: the repo's sample_images/)."""
     default = Path(__file__).resolve().parent.parent / "sample_images"
     outdir = Path(argv[1]) if len(argv) > 1 else default
-    for rel, recipe in catalogue():
-        pixels = recipe(rng_for(rel))
-        image = Image.fromarray(pixels)
-        assert image.mode == ("L" if pixels.ndim == 2 else "RGB")
+    for rel, make in files():
+        data = make(rng_for(rel))
         path = outdir / rel
         path.parent.mkdir(parents=True, exist_ok=True)
-        image.save(path, format="PNG", optimize=True)
-        print(f"{path} {image.mode} {image.width}x{image.height} {path.stat().st_size} bytes")
+        path.write_bytes(data)
+        print(f"{path} {describe(data)} {len(data)} bytes")
 
 
 if __name__ == "__main__":
