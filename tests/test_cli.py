@@ -8,6 +8,7 @@ traceback, never a partial output.
 from __future__ import annotations
 
 import json
+import os
 import shutil
 import subprocess
 import sys
@@ -180,8 +181,8 @@ def test_compress_prints_a_summary_and_nothing_on_stderr(made: Made, tmp_path: P
 
 
 def test_list_shows_every_entry_with_format_size_bytes_rate_and_method(made: Made) -> None:
-    """`list` prints one row per entry: path, format, width, height, bytes, bits per
-    subpixel and method for images; kept files say so with the reason."""
+    """`list` prints one row per entry in path order: path, format, width, height, bytes,
+    bits per subpixel and method for images; kept files say so with the reason."""
     result = run("list", made.archive)
 
     assert result.exit_code == 0, result.stderr
@@ -197,6 +198,8 @@ def test_list_shows_every_entry_with_format_size_bytes_rate_and_method(made: Mad
                                         str(size), f"{rate:.3f}"]
         else:
             assert rows[e.path][:4] == [e.path, "file", str(size), "kept"]
+    listed = [line.split()[0] for line in result.stdout.splitlines()[2:]]
+    assert listed == sorted(e.path for e in entries)  # path order, whatever the archive's
 
 
 def test_list_json_has_every_entry_with_the_documented_keys(made: Made) -> None:
@@ -837,6 +840,49 @@ def test_decompress_with_force_replaces_existing_files(made: Made, tmp_path: Pat
     assert files_under(out) == set(SOURCES)
     assert np.array_equal(pixels(out / "sub" / "gray.png")[1],
                           pixels(made.originals / "sub" / "gray.png")[1])
+
+
+def test_decompress_never_writes_through_a_symbolic_link_in_the_output_folder(
+        made: Made, tmp_path: Path) -> None:
+    """A link inside the output folder where an entry's folder goes is refused, --force or
+    not, before anything is written; the place it points to stays empty."""
+    out, elsewhere = tmp_path / "out", tmp_path / "elsewhere"
+    out.mkdir()
+    elsewhere.mkdir()
+    (out / "sub").symlink_to(elsewhere, target_is_directory=True)
+
+    result = run("decompress", made.archive, "-o", out, "--model", TINY, "--force")
+
+    line = error_line(result, 2, out / "sub")
+    assert "is a symbolic link;" in line and "would not be written inside the output" in line
+    assert list(elsewhere.iterdir()) == [] and files_under(out) == set()
+
+
+def test_decompress_with_force_replaces_all_or_nothing(made: Made, tmp_path: Path,
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """When a move into place fails midway, the files already replaced are put back: the
+    output folder is as it was."""
+    out = tmp_path / "out"
+    out.mkdir()
+    before = {}
+    for name in SOURCES:
+        (out / name).parent.mkdir(parents=True, exist_ok=True)
+        (out / name).write_bytes(b"old " + name.encode())
+        before[name] = (out / name).read_bytes()
+    real_replace, moves = os.replace, []
+
+    def failing_replace(src, dst):
+        moves.append(dst)
+        if len(moves) == 7:  # the fourth file's move, after three were replaced
+            raise OSError(28, "No space left on device", str(dst))
+        real_replace(src, dst)
+
+    monkeypatch.setattr(rowcast.api.os, "replace", failing_replace)
+    result = run("decompress", made.archive, "-o", out, "--model", TINY, "--force")
+
+    assert result.exit_code == 1
+    assert {name: (out / name).read_bytes() for name in SOURCES} == before
+    assert files_under(out) == set(SOURCES)  # nor a staging folder left behind
 
 
 def test_decompress_into_a_file_is_a_usage_error(made: Made, tmp_path: Path) -> None:

@@ -415,6 +415,8 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
     ident, entries = read_index(src)
     kept = [e for e in entries if e.kind != "left out"]
     targets = {e.path: outdir / e.restored_path for e in kept}
+    for target in targets.values():
+        _inside(outdir, target)
     clashes = [t for t in targets.values() if t.exists() or t.is_symlink()]
     if clashes and not force:
         raise UsageError(f"{clashes[0]}: already exists (use --force to replace it)")
@@ -438,17 +440,53 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
                 failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
                 continue
             ready.append(e)
-        written = []
-        for e in ready:
-            target = targets[e.path]
-            target.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(stage / e.restored_path, target)
-            written.append(target)
+        written = _put_in_place([(stage / e.restored_path, targets[e.path]) for e in ready],
+                                outdir, stage)
     finally:
         shutil.rmtree(stage, ignore_errors=True)
         if made and not any(outdir.iterdir()):
             outdir.rmdir()
     return Restored(written, failed, [e for e in entries if e.kind == "left out"])
+
+
+def _inside(outdir: Path, target: Path) -> None:
+    """UsageError unless every folder between `outdir` and `target` is a real folder or
+    not there yet: a symbolic link there would send the file elsewhere."""
+    if target.is_dir() and not target.is_symlink():
+        raise UsageError(f"{target}: is a directory; an entry restores to this name")
+    folder = outdir
+    for part in target.relative_to(outdir).parts[:-1]:
+        folder = folder / part
+        if folder.is_symlink() or (folder.exists() and not folder.is_dir()):
+            what = "a symbolic link" if folder.is_symlink() else "not a directory"
+            raise UsageError(f"{folder}: is {what}; {target.name} would not be written "
+                             "inside the output folder")
+
+
+def _put_in_place(moves: list[tuple[Path, Path]], outdir: Path, stage: Path) -> list[Path]:
+    """Move each staged file onto its target, all or nothing: a file it replaces is set
+    aside in the staging folder until every move has succeeded, and put back otherwise."""
+    aside = stage / ".replaced"
+    aside.mkdir()
+    done: list[tuple[Path, Path | None]] = []
+    try:
+        for i, (staged, target) in enumerate(moves):
+            _inside(outdir, target)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            old = None
+            if target.exists() or target.is_symlink():
+                old = aside / str(i)
+                os.replace(target, old)
+            done.append((target, old))
+            os.replace(staged, target)
+    except BaseException:
+        for target, old in reversed(done):
+            if old is None:
+                target.unlink(missing_ok=True)
+            else:
+                os.replace(old, target)
+        raise
+    return [target for _, target in moves]
 
 
 def verify(src: Path | str, *, against: Path | str | None = None,

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import signal
 import sys
 from collections.abc import Iterator
 from pathlib import Path
@@ -159,7 +160,7 @@ def _describe_kinds(kinds) -> str:
         name = imagefile.describe(kind)
         if name not in names:
             names.append(name)
-    return ",".join(names) or "-"
+    return ", ".join(names) or "-"
 
 
 @app.command("list")
@@ -170,6 +171,7 @@ def list_(
     """List an archive's entries without decoding them."""
     with _guard(None):
         ident, entries = api.read_index(archive)
+        entries = sorted(entries, key=lambda e: e.path)
         rows = []
         for e in entries:
             size = e.length + e.extras_length
@@ -187,7 +189,7 @@ def list_(
         out.print(f"model {ident.name} sha256 {ident.sha256.hex()[:16]}", markup=False)
         width = max([len(r["path"]) for r in rows] + [4])
         out.print(f"{'path':<{width}}  {'format':<7} {'width':>5} {'height':>6} {'bytes':>8} "
-                  f"{'bpsp':>6}  {'method':<16} carries", markup=False)
+                  f"{'bpsp':>6}  {'method':<16} notes", markup=False)
         for r, e in zip(rows, entries, strict=True):
             if e.kind == "image":
                 method = "+".join(r["parts"]) if e.method == "coded" else e.method
@@ -266,11 +268,18 @@ def verify(
             raise typer.Exit(1)
 
 
+def _stop(signum: int, frame: object) -> None:
+    """SIGTERM and SIGHUP unwind like ^C, so every temporary file and folder is removed."""
+    raise KeyboardInterrupt
+
+
 def main() -> None:
     """Console entry point: usage errors and bugs also end as one line on stderr."""
+    for stop in (signal.SIGTERM, signal.SIGHUP):
+        signal.signal(stop, _stop)
     try:
         code = app(standalone_mode=False)
-    except typer.Abort:
+    except (typer.Abort, KeyboardInterrupt):
         print("rowcast: interrupted; nothing was written", file=sys.stderr)
         code = 130
     except OSError as exc:

@@ -10,7 +10,9 @@ Every split gives the same integers (the exactness contract). Where fork is not 
 
 from __future__ import annotations
 
+import ctypes
 import multiprocessing as mp
+import os
 import signal
 import sys
 from collections.abc import Callable, Sequence
@@ -21,6 +23,7 @@ from threadpoolctl import threadpool_limits
 
 Report = Callable[[int], None]
 MIN_SHARE = 16  # images per process below which splitting a batch does not pay
+PR_SET_PDEATHSIG = 1  # prctl(2)
 
 
 def shares(count: int, workers: int | None) -> list[tuple[int, int]]:
@@ -38,8 +41,23 @@ def can_fork() -> bool:
     return sys.platform.startswith("linux") and "fork" in mp.get_all_start_methods()
 
 
-def _child(fn: Callable, part: Any, conn) -> None:
-    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles ^C and stops us
+def _die_with_parent(parent: int) -> None:
+    """Ask Linux to kill this process when the parent goes, however it goes (a forked
+    child also holds pipe ends, so it would never see the parent's end of the pipe)."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+    except (OSError, AttributeError):
+        return
+    if os.getppid() != parent:  # the parent went before the request took effect
+        os._exit(1)
+
+
+def _child(fn: Callable, part: Any, conn, parent: int) -> None:
+    _die_with_parent(parent)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles ^C and stops us,
+    signal.signal(signal.SIGHUP, signal.SIG_IGN)  # and a hang-up,
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)  # with SIGTERM: it ends us at once
     torch.set_num_threads(1)
     try:
         with threadpool_limits(limits=1, user_api="blas"):
@@ -71,7 +89,7 @@ def run_split(fn: Callable[[Any, Report], Any], parts: Sequence, progress: Repor
     try:
         for part in parts[1:]:
             receive, send = ctx.Pipe(duplex=False)
-            proc = ctx.Process(target=_child, args=(fn, part, send), daemon=True)
+            proc = ctx.Process(target=_child, args=(fn, part, send, os.getpid()), daemon=True)
             proc.start()
             send.close()
             pipes.append(receive)
