@@ -26,20 +26,21 @@ echo "--- errors"
 show rowcast compress sample_images -o samples.rowcast
 python - <<'EOF'
 from PIL import Image
-Image.new("RGBA", (16, 16), (40, 90, 30, 128)).save("sample_images/gate/overlay.png")
+Image.new("CMYK", (16, 16), (40, 90, 30, 12)).save("sample_images/gate/proof.tif")
+Image.new("F", (16, 16), 0.5).save("sample_images/gate/depth.tif")
 EOF
 show rowcast compress sample_images -o more.rowcast
-rm sample_images/gate/overlay.png
+show rowcast compress sample_images -o more.rowcast --leave-out-refused --exclude '*.json'
+rm sample_images/gate/proof.tif sample_images/gate/depth.tif
 python - <<'EOF'
-import numpy as np
-from PIL import Image
-path = "sample_images/gate/gate_night.png"
-a = np.asarray(Image.open(path)).copy()
+import tifffile
+path = "sample_images/soil-probe/raw_1400.tif"
+a = tifffile.imread(path)
 a[0, 0] ^= 1
-Image.fromarray(a).save(path)
+tifffile.imwrite(path, a)
 EOF
 show rowcast verify samples.rowcast --against sample_images
-cp "$repo/sample_images/gate/gate_night.png" sample_images/gate/
+cp "$repo/sample_images/soil-probe/raw_1400.tif" sample_images/soil-probe/
 
 if [ "${1:-}" = "--train" ]; then
     echo "--- training: all folders but orchard-south, which is held out"

@@ -233,6 +233,28 @@ def test_decompress_restores_every_file_at_its_relative_path_in_its_container(
                 assert im.format == ("BMP" if name.endswith(".bmp") else "PNG")
 
 
+def test_decompress_restores_only_the_entries_named(made: Made, tmp_path: Path) -> None:
+    """Paths after the archive pick entries: only they are decoded and written."""
+    out = tmp_path / "one"
+    result = run("decompress", made.archive, "sub/gray.png", "sub/notes.txt", "-o", out,
+                 "--model", TINY)
+
+    assert result.exit_code == 0, result.stderr
+    assert files_under(out) == {"sub/gray.png", "sub/notes.txt"}
+    assert (out / "sub/notes.txt").read_bytes() == (made.originals / "sub/notes.txt").read_bytes()
+    assert np.array_equal(pixels(out / "sub/gray.png")[1],
+                          pixels(made.originals / "sub/gray.png")[1])
+
+
+def test_decompress_of_an_entry_not_in_the_archive_is_a_usage_error(made: Made,
+                                                                    tmp_path: Path) -> None:
+    result = run("decompress", made.archive, "sub/nope.png", "-o", tmp_path / "x", "--model", TINY)
+
+    assert error_line(result, 2, made.archive) == (
+        f"rowcast: error: {made.archive}: has no entry 'sub/nope.png'")
+    assert not (tmp_path / "x").exists()
+
+
 @pytest.mark.parametrize("name", IMAGES)
 def test_decompress_restores_identical_pixels_and_mode(made: Made, name: str) -> None:
     """Each restored image has exactly the pixels and the mode Pillow (an independent

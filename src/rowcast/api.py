@@ -3,7 +3,7 @@
 Every file under the inputs is accounted for: an image rowcast codes (`rowcast.imagefile`
 reads it at full depth, with its palette, transparency and metadata), a file kept byte for
 byte (JPEG, lossy WebP, anything that is not an image rowcast codes), or a file left out by
-the user's choice (`exclude`, or `leave_out` for files that cannot be kept), recorded in the
+the user's choice (`exclude`, or `leave_out_refused` for files that cannot be kept), recorded in the
 archive with the reason. Each function validates before writing and raises a
 `RowcastError` whose message is one line naming the file and the reason.
 """
@@ -193,8 +193,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     are left out and recorded. Files that cannot be kept (CMYK, float, several frames,
     unreadable) stop the run, all named in one `RefusedError`, unless `leave_out_refused`,
     which records them as left out with the reason. `strip_metadata` drops every image's
-    metadata (palette and transparency stay: they are pixels). Images are read and coded in
-    groups, so memory stays bounded however many there are.
+    metadata (what gives the values their meaning stays: `picture.MEANING`). Images are
+    read and coded in groups, so memory stays bounded however many there are.
     """
     dest = Path(dest)
     if dest.is_dir():
@@ -385,6 +385,17 @@ def _file_bytes(src: Path, e: IndexEntry) -> bytes | DataError:
     return data
 
 
+def _selected(src: Path, entries: list[IndexEntry], paths: Sequence[str]) -> list[IndexEntry]:
+    """The entries with these paths, in archive order; UsageError naming one that is not
+    there."""
+    names = {e.path for e in entries}
+    missing = [p for p in paths if p not in names]
+    if missing:
+        raise UsageError(f"{src}: has no entry {missing[0]!r}")
+    wanted = set(paths)
+    return [e for e in entries if e.path in wanted]
+
+
 def decode_entries(src: Path | str, *, model: Path | str | None = None,
                    batch: int = DEFAULT_BATCH, progress: Progress = None,
                    only: Sequence[str] | None = None) -> Iterator[tuple[IndexEntry, Content]]:
@@ -394,8 +405,7 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
     src = Path(src)
     ident, entries = read_index(src)
     if only is not None:
-        wanted = set(only)
-        entries = [e for e in entries if e.path in wanted]
+        entries = _selected(src, entries, only)
     for e, content in _contents(src, ident, entries, model, batch, progress):
         if isinstance(content, DataError):
             raise content
@@ -403,16 +413,19 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
 
 
 def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None = None,
-               force: bool = False, batch: int = DEFAULT_BATCH,
-               progress: Progress = None) -> Restored:
-    """Restore every entry that decodes under `outdir`, each under its path (images in
-    their own container where it can hold them exactly, else as PNG under the recorded
-    name), and name each one that does not. Entries are decoded into a staging folder
-    inside `outdir` and moved into place at the end."""
+               force: bool = False, batch: int = DEFAULT_BATCH, progress: Progress = None,
+               only: Sequence[str] | None = None) -> Restored:
+    """Restore every entry that decodes (or those whose paths `only` names) under
+    `outdir`, each under its path (images in their own container where it can hold them
+    exactly, else as PNG under the recorded name), and name each one that does not.
+    Entries are decoded into a staging folder inside `outdir` and moved into place at the
+    end."""
     src, outdir = Path(src), Path(outdir)
     if outdir.exists() and not outdir.is_dir():
         raise UsageError(f"{outdir}: not a directory")
     ident, entries = read_index(src)
+    if only is not None:
+        entries = _selected(src, entries, only)
     kept = [e for e in entries if e.kind != "left out"]
     targets = {e.path: outdir / e.restored_path for e in kept}
     for target in targets.values():

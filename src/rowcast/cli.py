@@ -215,14 +215,18 @@ def decompress(
     quiet: QuietOpt = False,
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
+    paths: Annotated[list[str] | None, typer.Argument(
+        help="Entries to restore, by their paths in the archive (default: all).")] = None,
 ) -> None:
     """Restore every file under its path: images with the same values, palette,
     transparency and metadata, kept files byte for byte."""
     with _guard(threads):
         _, entries = api.read_index(archive)
+        if paths:
+            entries = [e for e in entries if e.path in set(paths)]
         with _bar("decoding rows", _rows_total(entries), quiet) as tick:
             restored = api.decompress(archive, output, model=model, force=force, batch=batch,
-                                      progress=tick)
+                                      progress=tick, only=paths or None)
         for line in restored.failed:
             err.print(f"rowcast: {line}", markup=False)
         if not quiet:
