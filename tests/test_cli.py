@@ -246,6 +246,21 @@ def test_decompress_restores_only_the_entries_named(made: Made, tmp_path: Path) 
                           pixels(made.originals / "sub/gray.png")[1])
 
 
+@pytest.mark.parametrize("command", ["list", "verify", "decompress"])
+def test_an_image_over_the_subpixel_limit_is_refused_before_decoding(made: Made, tmp_path: Path,
+                                                                     command: str) -> None:
+    """--max-subpixels bounds what an archive may declare (the top image is 12 x 10 RGB,
+    360 subpixels): below it every command refuses the archive, naming the sizes."""
+    args = {"list": [], "verify": ["--model", TINY],
+            "decompress": ["--model", TINY, "-o", tmp_path / "out"]}[command]
+
+    line = error_line(run(command, made.archive, *args, "--max-subpixels", "359"), 1,
+                      made.archive)
+    assert "12 x 10 x 3 subpixels exceed the limit of 359" in line
+    assert not (tmp_path / "out").exists()
+    assert run(command, made.archive, *args, "--max-subpixels", "360").exit_code == 0
+
+
 def test_decompress_of_an_entry_not_in_the_archive_is_a_usage_error(made: Made,
                                                                     tmp_path: Path) -> None:
     result = run("decompress", made.archive, "sub/nope.png", "-o", tmp_path / "x", "--model", TINY)

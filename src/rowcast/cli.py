@@ -19,6 +19,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from rowcast import api, imagefile
+from rowcast.archive import DEFAULT_PIXEL_LIMIT
 from rowcast.errors import RowcastError, UsageError
 from rowcast.pixelformats import subpixels
 
@@ -33,6 +34,9 @@ ModelOpt = Annotated[Path | None, typer.Option(
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Machine-readable output.")]
 BatchOpt = Annotated[int, typer.Option("--batch", min=1, help="Images decoded together.")]
+LimitOpt = Annotated[int, typer.Option(
+    "--max-subpixels", min=1, help="Refuse an archive declaring an image of more subpixels "
+    "(width x height x planes) than this, before decoding anything.")]
 ThreadsOpt = Annotated[int | None, typer.Option("--threads", min=1, help="CPU threads.")]
 
 
@@ -167,10 +171,11 @@ def _describe_kinds(kinds) -> str:
 def list_(
     archive: Annotated[Path, typer.Argument(help="Archive to read.")],
     as_json: JsonOpt = False,
+    max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
 ) -> None:
     """List an archive's entries without decoding them."""
     with _guard(None):
-        ident, entries = api.read_index(archive)
+        ident, entries = api.read_index(archive, max_subpixels=max_subpixels)
         entries = sorted(entries, key=lambda e: e.path)
         rows = []
         for e in entries:
@@ -215,18 +220,20 @@ def decompress(
     quiet: QuietOpt = False,
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
+    max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
     paths: Annotated[list[str] | None, typer.Argument(
         help="Entries to restore, by their paths in the archive (default: all).")] = None,
 ) -> None:
     """Restore every file under its path: images with the same values, palette,
     transparency and metadata, kept files byte for byte."""
     with _guard(threads):
-        _, entries = api.read_index(archive)
+        _, entries = api.read_index(archive, max_subpixels=max_subpixels)
         if paths:
             entries = [e for e in entries if e.path in set(paths)]
         with _bar("decoding rows", _rows_total(entries), quiet) as tick:
             restored = api.decompress(archive, output, model=model, force=force, batch=batch,
-                                      progress=tick, only=paths or None)
+                                      progress=tick, only=paths or None,
+                                      max_subpixels=max_subpixels)
         for line in restored.failed:
             err.print(f"rowcast: {line}", markup=False)
         if not quiet:
@@ -250,14 +257,16 @@ def verify(
     as_json: JsonOpt = False,
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
+    max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
 ) -> None:
     """Decode everything; exit 0 only if every checksum (and every file) matches."""
     with _guard(threads):
         if against is not None and not against.is_dir():
             raise UsageError(f"{against}: not a directory (--against)")
-        _, entries = api.read_index(archive)
+        _, entries = api.read_index(archive, max_subpixels=max_subpixels)
         with _bar("verifying rows", _rows_total(entries), quiet or as_json) as tick:
-            check = api.verify(archive, against=against, model=model, batch=batch, progress=tick)
+            check = api.verify(archive, against=against, model=model, batch=batch, progress=tick,
+                               max_subpixels=max_subpixels)
         if as_json:
             out.print(json.dumps({"ok": check.ok, "checked": check.checked,
                                   "problems": check.problems}), markup=False)
