@@ -113,3 +113,25 @@ def test_decoding_processes_die_with_a_killed_parent(tmp_path: Path) -> None:
         wait_for(lambda: state(child) in ("gone", "Z"), seconds=10)
     finally:
         parent.kill()
+
+
+def test_running_out_of_memory_is_one_line_and_a_clean_exit(tmp_path: Path) -> None:
+    """A MemoryError (0.8 printed `internal error: MemoryError`) says what happened and what
+    bounds it, exits 1, and writes nothing."""
+    script = textwrap.dedent("""
+        from rowcast import api, cli
+
+        def exhausted(*args, **kwargs):
+            raise MemoryError
+
+        api.read_index = exhausted
+        cli.main()
+    """)
+    archive = tmp_path / "any.rowcast"
+    archive.write_bytes(b"x")
+    result = subprocess.run([sys.executable, "-c", script, "list", str(archive)], env=ENV,
+                            capture_output=True, text=True)
+
+    assert result.returncode == 1
+    assert result.stderr.startswith("rowcast: error: out of memory; nothing was written")
+    assert result.stderr.count("\n") == 1 and "Traceback" not in result.stderr

@@ -298,6 +298,10 @@ def main() -> None:
     except OSError as exc:
         print(f"rowcast: error: {exc.filename or ''}: {exc.strerror or exc}", file=sys.stderr)
         code = 1
+    except MemoryError:
+        print("rowcast: error: out of memory; nothing was written (--max-subpixels lowers "
+              "the largest image an archive may declare)", file=sys.stderr)
+        code = 1
     except Exception as exc:
         if hasattr(exc, "format_message") and hasattr(exc, "exit_code"):  # a usage error
             print(f"rowcast: error: {exc.format_message()} (see rowcast --help)", file=sys.stderr)
