@@ -49,9 +49,9 @@ def _fail(exc: RowcastError) -> None:
 def _guard(threads: int | None) -> Iterator[None]:
     """Apply the thread count; turn our errors into one line and an exit status."""
     if threads:
-        import torch
+        from rowcast import workers
 
-        torch.set_num_threads(threads)
+        workers.set_threads(threads)
     try:
         yield
     except RowcastError as exc:

@@ -1,11 +1,14 @@
-"""Integer-exact inference of the predictor: a parallel pass for the encoder and an
-incremental pass for the decoder, both giving the same integers on any machine.
+"""Integer-exact inference of the predictor on numpy: a parallel pass for the encoder and
+an incremental pass for the decoder, both giving the same integers on any machine.
 
-Integers travel in float32 (or float64) tensors only because every layer's accumulator bound,
-checked when the model is loaded, keeps all partial sums exact in that type; so every kernel,
-thread count and summation order gives the same sums. Requantisation is
+Activations are channel-last arrays (B, H, W, C). A layer's accumulators are its bias plus,
+for each kernel tap, a plain matrix product of the shifted activations with that tap's
+weights. Integers travel in float32 (or float64) arrays only because every layer's
+accumulator bound, checked when the model is loaded, keeps all partial sums exact in that
+type; so any BLAS, thread count or summation order gives the same sums. Requantisation is
 out = floor((acc * mult + 2**(shift-1)) / 2**shift), clamped to 0..255 after ReLU layers; it
-runs in float64, where every step is exact (see `requantise`).
+runs in float64, where every step is exact (see `requantise`). No torch at run time: it is
+needed only to train.
 """
 
 from __future__ import annotations
@@ -13,42 +16,24 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-import torch
-import torch.nn.functional as F
 
-from rowcast.network import activity_planes, left_window, row_stack_input, with_valid
+from rowcast import family as fam
 from rowcast.quantize import EXACT_F32, IntLayer, IntModel
 
-CHANNELS_LAST = torch.channels_last  # the encoder's layout: 5-15% faster convolutions here
 HEAD_PIXELS = 2048  # pixels per band of the encoder's head: its activations stay in cache
 
-torch.backends.cudnn.allow_tf32 = False
-torch.backends.cuda.matmul.allow_tf32 = False
 
-
-def _dtype(layer: IntLayer) -> torch.dtype:
-    return torch.float32 if layer.bound < EXACT_F32 else torch.float64
+def _dtype(layer: IntLayer) -> type:
+    return np.float32 if layer.bound < EXACT_F32 else np.float64
 
 
 @functools.cache
-def _weights(layer: IntLayer) -> tuple[torch.Tensor, torch.Tensor]:
+def _taps(layer: IntLayer) -> tuple[np.ndarray, np.ndarray]:
+    """The weights as (kh, kw, cin, cout) and the bias, in the layer's float type (exact:
+    every value is an integer below the layer's bound)."""
     dt = _dtype(layer)
-    return torch.from_numpy(layer.weight.astype(np.float64)).to(dt), torch.from_numpy(
-        layer.bias.astype(np.float64)).to(dt)
-
-
-def requantise(acc: torch.Tensor, layer: IntLayer) -> torch.Tensor:
-    """Requantise exact integer accumulators (B, C, H, W) per channel; float64 result.
-
-    Computed as floor(acc * (mult / 2**shift) + 1/2), which equals the definition above
-    step by step: mult / 2**shift is exact (a power-of-two scale), |acc * mult| < 2**52
-    (checked at load) so the product is exact, and the sum is the definition's numerator
-    over 2**shift, exact for shift <= 52 (the model loader's limit).
-    """
-    y = acc.to(torch.float64)  # a new tensor unless acc is float64 already: never a caller's
-    y = y.clone() if y is acc else y
-    y.mul_(torch.from_numpy(_scale(layer)).view(1, -1, 1, 1)).add_(0.5).floor_()
-    return y.clamp_(0.0, 255.0) if layer.relu else y
+    return (np.ascontiguousarray(layer.weight.transpose(2, 3, 1, 0), dtype=dt),
+            layer.bias.astype(dt))
 
 
 @functools.cache
@@ -56,29 +41,83 @@ def _scale(layer: IntLayer) -> np.ndarray:
     return layer.mult.astype(np.float64) * 2.0**-layer.shift  # exact: a power-of-two scale
 
 
-def conv_fast(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
-    """Accumulators of one layer with torch's kernels, valid under the layer's bound."""
-    w, b = _weights(layer)
-    kh, kw = layer.weight.shape[2:]
-    top = kh - 1 if pad_top else 0
-    # conv2d pads top and bottom alike; the first H output rows are the top-padded ones
-    y = F.conv2d(a.to(w.dtype), w, b, padding=(top, kw // 2))
-    return y[:, :, : y.shape[2] - top] if top else y
+def requantise(acc: np.ndarray, layer: IntLayer) -> np.ndarray:
+    """Requantise exact integer accumulators (..., C) per channel; a new float64 array.
+
+    Computed as floor(acc * (mult / 2**shift) + 1/2), which equals the definition above
+    step by step: mult / 2**shift is exact (a power-of-two scale), |acc * mult| < 2**52
+    (checked at load) so the product is exact, and the sum is the definition's numerator
+    over 2**shift, exact for shift <= 52 (the model loader's limit).
+    """
+    y = np.multiply(acc, _scale(layer), dtype=np.float64)
+    y += 0.5
+    np.floor(y, out=y)
+    return np.clip(y, 0.0, 255.0, out=y) if layer.relu else y
 
 
-def conv_reference(a: torch.Tensor, layer: IntLayer, pad_top: bool = True) -> torch.Tensor:
-    """The same accumulators in int64 loops over kernel taps: slow, order-free, the definition."""
+def _padded(a: np.ndarray, layer: IntLayer, pad_top: bool) -> np.ndarray:
+    """Zero padding for a vertically causal kernel: kh - 1 rows on top (none when the rows
+    above are already there), kw // 2 columns on each side."""
     kh, kw = layer.weight.shape[2:]
-    a = F.pad(a.to(torch.int64), (kw // 2, kw // 2, kh - 1 if pad_top else 0, 0))
-    w = torch.from_numpy(layer.weight.astype(np.int64))
-    h_out, w_out = a.shape[2] - kh + 1, a.shape[3] - kw + 1
-    acc = torch.from_numpy(layer.bias).view(1, -1, 1, 1).expand(a.shape[0], -1, h_out, w_out)
-    acc = acc.clone()
+    return np.pad(a, ((0, 0), (kh - 1 if pad_top else 0, 0), (kw // 2, kw // 2), (0, 0)))
+
+
+def conv_fast(a: np.ndarray, layer: IntLayer, pad_top: bool = True) -> np.ndarray:
+    """Accumulators (B, H', W, cout) of one layer for activations a (B, H, W, cin): one
+    matrix product per kernel tap, valid under the layer's bound."""
+    taps, bias = _taps(layer)
+    kh, kw, cin, cout = taps.shape
+    if kh == kw == 1:  # the head: one product, no padding
+        acc = a.reshape(-1, cin).astype(taps.dtype, copy=False) @ taps[0, 0]
+        acc += bias
+        return acc.reshape(*a.shape[:-1], cout)
+    p = _padded(a, layer, pad_top)
+    b, h, w = p.shape[0], p.shape[1] - kh + 1, p.shape[2] - kw + 1
+    acc = np.empty((b * h * w, cout), taps.dtype)
+    acc[:] = bias
     for i in range(kh):
         for j in range(kw):
-            tap = a[:, :, i : i + h_out, j : j + w_out]
-            acc += torch.einsum("bchw,oc->bohw", tap, w[:, :, i, j])
+            shifted = np.ascontiguousarray(p[:, i : i + h, j : j + w], dtype=taps.dtype)
+            acc += shifted.reshape(-1, cin) @ taps[i, j]
+    return acc.reshape(b, h, w, cout)
+
+
+def conv_reference(a: np.ndarray, layer: IntLayer, pad_top: bool = True) -> np.ndarray:
+    """The same accumulators in int64 over kernel taps: slow, order-free, the definition."""
+    kh, kw = layer.weight.shape[2:]
+    p = _padded(a.astype(np.int64), layer, pad_top)
+    w = layer.weight.astype(np.int64)
+    h, width = p.shape[1] - kh + 1, p.shape[2] - kw + 1
+    acc = np.broadcast_to(layer.bias.astype(np.int64), (p.shape[0], h, width, len(w))).copy()
+    for i in range(kh):
+        for j in range(kw):
+            acc += np.einsum("bhwc,oc->bhwo", p[:, i : i + h, j : j + width], w[:, :, i, j])
     return acc
+
+
+def with_valid(x: np.ndarray) -> np.ndarray:
+    """Append a plane that is 255 on real pixels, so zero padding is told apart from black."""
+    return np.concatenate([x, np.full(x.shape[:-1] + (1,), 255.0, x.dtype)], -1)
+
+
+def row_stack_input(x: np.ndarray) -> np.ndarray:
+    """Pixels (B, H, W, 3) with their valid plane, shifted down one row: row y holds y-1."""
+    v = with_valid(x)
+    return np.concatenate([np.zeros_like(v[:, :1]), v[:, :-1]], 1)
+
+
+def left_window(x: np.ndarray, left: int) -> np.ndarray:
+    """The pixels (with valid plane) at x-1 .. x-left of the same row, zero past the edge."""
+    v = with_valid(x)
+    w = v.shape[2]
+    return np.concatenate([np.pad(v, ((0, 0), (0, 0), (d, 0), (0, 0)))[:, :, :w]
+                           for d in range(1, left + 1)], -1)
+
+
+def activity_planes(x: np.ndarray) -> np.ndarray:
+    """`family.row_activity` of pixels x (B, H, W, 3), spread over each row (B, H, W, 3)."""
+    act = fam.row_activity(x.transpose(0, 3, 1, 2)).astype(x.dtype)  # (B, 3, H)
+    return np.broadcast_to(act.transpose(0, 2, 1)[:, :, None], x.shape)
 
 
 class Engine:
@@ -95,7 +134,7 @@ class Engine:
         # below 2**52 of them (the loader checks bound * mult < 2**52).
         s1, s2, s3 = (_scale(layer) for layer in (self.head1, self.head2, self.out))
         w1 = self.head1.weight[:, :, 0, 0].T.astype(np.float64)  # exact: bounds < 2**53
-        self._w1_rows = torch.from_numpy(w1[: model.width]).to(_dtype(self.head1))
+        self._w1_rows = w1[: model.width].astype(_dtype(self.head1))
         self._s1, self._c1 = s1, self.head1.bias * s1 + 0.5
         self._w1_activity = w1[w1.shape[0] - 3 :] * s1 if model.activity else None
         # The head's left window: weights of pixel x - d at rows 4(d-1)..4(d-1)+3 (R, G, B,
@@ -108,8 +147,7 @@ class Engine:
         self._valid = np.cumsum(255.0 * left[:, 3], axis=0)  # row n-1: n pixels to the left
         self._valid_rows: dict[int, np.ndarray] = {}
         # float32 where the layer's bound keeps every partial sum exact in it: 10% faster
-        self._w2 = self.head2.weight[:, :, 0, 0].T.astype(
-            np.float32 if self.head2.bound < EXACT_F32 else np.float64)
+        self._w2 = self.head2.weight[:, :, 0, 0].T.astype(_dtype(self.head2))
         self._s2, self._c2 = s2, self.head2.bias * s2 + 0.5
         self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64) * s3
         self._c3 = self.out.bias * s3 + 0.5
@@ -117,30 +155,30 @@ class Engine:
     # -- encoder: everything at once -------------------------------------------------------
     def parallel(self, x: np.ndarray) -> np.ndarray:
         """Raw integer outputs (B, H, W, OUTPUTS) int64 for images x (B, 3, H, W) uint8."""
-        t = torch.from_numpy(x).to(torch.float32)
-        a = row_stack_input(t).contiguous(memory_format=CHANNELS_LAST)
+        t = x.transpose(0, 2, 3, 1).astype(np.float32)
+        a = row_stack_input(t)
         for layer in self.rows:
             a = requantise(self.conv(a, layer), layer)
-        head_in = [a.to(torch.float32), left_window(t, self.left)]
+        head_in = [a.astype(np.float32), left_window(t, self.left)]
         if self.model.activity:
             head_in.append(activity_planes(t))
-        joined = torch.cat(head_in, 1).contiguous(memory_format=CHANNELS_LAST)
+        joined = np.concatenate(head_in, -1)
         rows = max(1, HEAD_PIXELS // (x.shape[0] * x.shape[3]))
         outs = []
         for y in range(0, x.shape[2], rows):  # the head is per pixel: bands of rows
-            h = joined[:, :, y : y + rows]
+            h = joined[:, y : y + rows]
             for layer in (self.head1, self.head2, self.out):
                 h = requantise(self.conv(h, layer), layer)
             outs.append(h)
-        return torch.cat(outs, 2).permute(0, 2, 3, 1).to(torch.int64).numpy()
+        return np.concatenate(outs, 1).astype(np.int64)
 
     # -- decoder: a row at a time, then a pixel at a time ------------------------------------
-    def start(self, batch: int, width: int) -> list[torch.Tensor]:
+    def start(self, batch: int, width: int) -> list[np.ndarray]:
         """Row-stack state before row 0: each layer's previous input row is top padding."""
         chans = [4] + [layer.weight.shape[0] for layer in self.rows[:-1]]
-        return [torch.zeros(batch, c, 1, width) for c in chans]
+        return [np.zeros((batch, 1, width, c), np.float32) for c in chans]
 
-    def next_row(self, state: list[torch.Tensor], above: np.ndarray | None,
+    def next_row(self, state: list[np.ndarray], above: np.ndarray | None,
                  activity: np.ndarray) -> np.ndarray:
         """Advance the row stack by one row; returns head 1's folded accumulators (W, B,
         hidden) for the new row, with every term but those of the pixels to the left.
@@ -149,15 +187,15 @@ class Engine:
         (B, 3) is the row's `family.row_activity` (unused by models without it).
         """
         if above is None:
-            a = torch.zeros_like(state[0])
+            a = np.zeros_like(state[0])
         else:
-            a = with_valid(torch.from_numpy(above).to(torch.float32).unsqueeze(2))
+            a = with_valid(above.transpose(0, 2, 1)[:, None].astype(np.float32))
         for i, layer in enumerate(self.rows):
-            pair = torch.cat([state[i], a], 2)
+            pair = np.concatenate([state[i], a], 1)
             state[i] = a
-            a = requantise(self.conv(pair, layer, pad_top=False), layer).to(torch.float32)
-        feats = a[:, :, 0].permute(2, 0, 1).to(self._w1_rows.dtype)  # (W, B, width)
-        acc = (feats @ self._w1_rows).to(torch.float64).numpy()
+            a = requantise(self.conv(pair, layer, pad_top=False), layer).astype(np.float32)
+        feats = a[:, 0].transpose(1, 0, 2).astype(self._w1_rows.dtype)  # (W, B, width)
+        acc = (feats @ self._w1_rows).astype(np.float64)
         acc *= self._s1
         acc += self._valid_terms(len(acc))
         if self._w1_activity is not None:
@@ -203,9 +241,8 @@ def self_test(model: IntModel) -> bool:
     rng = np.random.default_rng(1234)
     for layer in model.layers:
         cin = layer.weight.shape[1]
-        a = torch.from_numpy(rng.integers(0, 256, size=(2, cin, 5, 9)).astype(np.float32))
-        a[0, :, 0] = 255.0  # include the extreme inputs that reach the bound
-        if not torch.equal(conv_fast(a, layer).to(torch.int64), conv_reference(a, layer)):
+        a = rng.integers(0, 256, size=(2, 5, 9, cin)).astype(np.float32)
+        a[0, 0] = 255.0  # include the extreme inputs that reach the bound
+        if not np.array_equal(conv_fast(a, layer).astype(np.int64), conv_reference(a, layer)):
             return False
     return True
-

@@ -14,14 +14,16 @@ import math
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import torch
 from safetensors import SafetensorError
 from safetensors.numpy import load, save
 
 from rowcast import family as fam
-from rowcast.network import PIXEL_STEP, Predictor
+
+if TYPE_CHECKING:  # training only: loading and running a model needs no torch
+    from rowcast.network import Predictor
 
 FORMAT = "rowcast-model"
 VERSION = 1
@@ -85,6 +87,8 @@ def _round(x: np.ndarray) -> np.ndarray:
 
 def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, dict]:
     """(card, tensors) of the integer network that quantised training simulated."""
+    import torch
+
     with torch.no_grad():
         steps = [s.double().numpy() for s in net.in_steps()]
         layers = net.layers()
@@ -130,6 +134,10 @@ def to_network(model: IntModel) -> Predictor:
     pixels' step, so real activations lie in 0..1 as after calibration and the weights keep
     the scale that training gave them (Adam's steps are relative to it).
     """
+    import torch
+
+    from rowcast.network import PIXEL_STEP, Predictor
+
     arch = model.card["architecture"]
     net = Predictor(arch["width"], arch["hidden"], arch["depth"], arch["left"],
                     arch.get("activity") is True, arch.get("components", 1))

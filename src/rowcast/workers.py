@@ -1,9 +1,9 @@
 """Coding on several cores: a batch is split and its parts coded in forked processes.
 
-Most of the coder's time is Python and coder calls that one thread runs; torch's threads
-only help the convolutions. So a large batch is shared by single-threaded processes, one per
-thread (measured on the 2-core build machine, 32 RGB thumbnails: decoding 2.07 -> 1.82 s,
-median of 4; with 16 or fewer images nothing was gained, so smaller batches stay whole).
+Most of the coder's time is Python and coder calls that one thread runs. So a large batch
+is shared by single-threaded processes, one per thread (`threads`; measured on the 2-core
+build machine, 32 RGB thumbnails: decoding 2.07 -> 1.82 s, median of 4; with 16 or fewer
+images nothing was gained, so smaller batches stay whole).
 Every split gives the same integers (the exactness contract). Where fork is not available
 (or not safe: macOS, Windows), the parts run one after another here.
 """
@@ -18,19 +18,32 @@ import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
-import torch
 from threadpoolctl import threadpool_limits
 
 Report = Callable[[int], None]
 MIN_SHARE = 16  # images per process below which splitting a batch does not pay
 PR_SET_PDEATHSIG = 1  # prctl(2)
+_threads: list[int] = []  # set by `set_threads`
+
+
+def set_threads(count: int | None) -> None:
+    """Use `count` threads (None: as many as this process may run on)."""
+    _threads[:] = [count] if count else []
+
+
+def threads() -> int:
+    """The threads rowcast uses: `set_threads`'s count, else the CPUs this process may run
+    on."""
+    if _threads:
+        return _threads[0]
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
 
 
 def shares(count: int, workers: int | None) -> list[tuple[int, int]]:
     """[start, end) of each part of a batch of `count`: `workers` parts when given, else one
-    per torch thread as long as each gets MIN_SHARE images."""
+    per thread (`threads`) as long as each gets MIN_SHARE images."""
     if workers is None:
-        workers = min(torch.get_num_threads(), count // MIN_SHARE)
+        workers = min(threads(), count // MIN_SHARE)
     n = max(1, min(workers, count))
     cuts = [count * i // n for i in range(n + 1)]
     return list(zip(cuts, cuts[1:], strict=False))
@@ -58,7 +71,6 @@ def _child(fn: Callable, part: Any, conn, parent: int) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles ^C and stops us,
     signal.signal(signal.SIGHUP, signal.SIG_IGN)  # and a hang-up,
     signal.signal(signal.SIGTERM, signal.SIG_DFL)  # with SIGTERM: it ends us at once
-    torch.set_num_threads(1)
     try:
         with threadpool_limits(limits=1, user_api="blas"):
             result = fn(part, lambda n: conn.send(("progress", n)))
@@ -72,7 +84,7 @@ def _child(fn: Callable, part: Any, conn, parent: int) -> None:
 def run_split(fn: Callable[[Any, Report], Any], parts: Sequence, progress: Report | None = None
               ) -> list:
     """[fn(part, report) for part in parts]: the first part in this process, each other one
-    in a forked child, all on one torch thread; `report(n)` from any of them reaches
+    in a forked child, each on one thread; `report(n)` from any of them reaches
     `progress`. An exception in any part is raised here, and the children are stopped.
     numpy's BLAS runs single-threaded throughout: its products here are small, and its
     threads would only contend for the same cores (measured: up to 1.7x slower)."""
@@ -85,7 +97,6 @@ def run_split(fn: Callable[[Any, Report], Any], parts: Sequence, progress: Repor
             return [fn(part, forward) for part in parts]
     ctx = mp.get_context("fork")
     pipes, procs = [], []
-    saved = torch.get_num_threads()
     try:
         for part in parts[1:]:
             receive, send = ctx.Pipe(duplex=False)
@@ -116,13 +127,11 @@ def run_split(fn: Callable[[Any, Report], Any], parts: Sequence, progress: Repor
             forward(n)
             drain(block=False)
 
-        torch.set_num_threads(1)
         with threadpool_limits(limits=1, user_api="blas"):
             results[0] = fn(parts[0], report)
         drain(block=True)
         return results
     finally:
-        torch.set_num_threads(saved)
         for proc in procs:
             if proc.is_alive():
                 proc.terminate()

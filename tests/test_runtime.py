@@ -1,0 +1,34 @@
+"""The run-time needs no torch: compressing, listing, verifying and decoding import only
+numpy and the coder; torch is for training alone (the `train` extra)."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+from conftest import TINY
+
+
+def test_coding_and_decoding_import_no_torch(tmp_path: Path) -> None:
+    script = textwrap.dedent(f"""
+        import sys
+        import numpy as np
+        from PIL import Image
+        import rowcast
+        from rowcast.cli import main
+
+        rng = np.random.default_rng(3)
+        Image.fromarray(rng.integers(0, 256, (9, 11, 3), np.uint8)).save("{tmp_path}/a.png")
+        rowcast.compress(["{tmp_path}/a.png"], "{tmp_path}/a.rowcast", model="{TINY}")
+        assert rowcast.verify("{tmp_path}/a.rowcast", against=None, model="{TINY}").ok
+        assert not rowcast.decompress("{tmp_path}/a.rowcast", "{tmp_path}/out",
+                                      model="{TINY}").failed
+        print(sorted(m for m in sys.modules if m.split(".")[0] == "torch"))
+    """)
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "[]"
+    assert (tmp_path / "out" / "a.png").exists()
