@@ -1,7 +1,8 @@
 """Stopping rowcast never leaves debris: SIGTERM and SIGHUP unwind like ^C (temporary
-archive and staging folder removed, exit status 130), and decoding processes die with
-their parent even when it is killed outright (rowcast 0.8 left a worker running for a
-minute holding 277 MB)."""
+archive and staging folder removed, exit status 130), a SIGKILL during compress leaves no
+temporary file (0.8 left `.NAME.rowcast.XXXX.tmp`), and decoding processes die with their
+parent even when it is killed outright (0.8 left a worker running for a minute holding
+277 MB)."""
 
 from __future__ import annotations
 
@@ -39,12 +40,26 @@ def wait_for(condition, seconds: float = 60.0) -> None:
         time.sleep(0.02)
 
 
+def writing_into(folder: Path):
+    """Whether a process holds a file open in `folder` (unnamed ones included: Linux shows
+    them as "folder/#inode (deleted)")."""
+    def check(pid: int) -> bool:
+        for fd in Path(f"/proc/{pid}/fd").glob("*"):
+            try:
+                if os.readlink(fd).startswith(f"{folder}/"):
+                    return True
+            except OSError:
+                continue
+        return False
+    return check
+
+
 def stop_midway(args: list[str], started, sig: int) -> subprocess.CompletedProcess:
-    """Run rowcast, send `sig` once `started()` holds, and wait for it to end."""
+    """Run rowcast, send `sig` once `started(pid)` holds, and wait for it to end."""
     proc = subprocess.Popen([*ENTRY, *args], env=ENV, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     try:
-        wait_for(lambda: started() or proc.poll() is not None)
+        wait_for(lambda: started(proc.pid) or proc.poll() is not None)
         assert proc.poll() is None, "finished before the signal: give it more work"
         time.sleep(0.3)
         proc.send_signal(sig)
@@ -60,10 +75,24 @@ def test_a_signal_during_compress_leaves_no_temporary_file(tmp_path: Path, sig: 
     out = tmp_path / "out"
     out.mkdir()
     result = stop_midway(["compress", str(tmp_path / "in"), "-o", str(out / "a.rowcast")],
-                         lambda: any(out.iterdir()), sig)
+                         writing_into(out), sig)
 
     assert result.returncode == 130, result.stderr
     assert result.stderr == "rowcast: interrupted; nothing was written\n"
+    assert list(out.iterdir()) == []
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="unnamed files: Linux only")
+def test_even_sigkill_during_compress_leaves_nothing(tmp_path: Path) -> None:
+    """The archive is written into an unnamed file (O_TMPFILE) that gets its name only when
+    complete, so a kill that cannot be caught leaves no debris either."""
+    textured(tmp_path / "in", 48)
+    out = tmp_path / "out"
+    out.mkdir()
+    result = stop_midway(["compress", str(tmp_path / "in"), "-o", str(out / "a.rowcast")],
+                         writing_into(out), signal.SIGKILL)
+
+    assert result.returncode == -signal.SIGKILL
     assert list(out.iterdir()) == []
 
 
@@ -75,7 +104,7 @@ def test_sigterm_during_decompress_leaves_no_staging_folder(tmp_path: Path) -> N
     assert done.returncode == 0, done.stderr
     out = tmp_path / "restored"
     result = stop_midway(["decompress", str(archive), "-o", str(out)],
-                         lambda: out.exists() and any(out.iterdir()), signal.SIGTERM)
+                         lambda pid: out.exists() and any(out.iterdir()), signal.SIGTERM)
 
     assert result.returncode == 130, result.stderr
     assert not out.exists()  # made by this run, so removed with the staging folder

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import os
 import re
+import secrets
 import struct
 import tempfile
 import unicodedata
@@ -437,6 +438,38 @@ def _new_file_mode() -> int:
     return 0o666 & ~mask
 
 
+def _unnamed_file(dest: Path) -> tuple[int, str | None]:
+    """A new file beside `dest` to write the archive into: unnamed where Linux allows it
+    (O_TMPFILE), so that even SIGKILL leaves nothing behind, else a hidden temporary
+    file (its name is returned)."""
+    if hasattr(os, "O_TMPFILE") and Path("/proc/self/fd").is_dir():
+        try:
+            return os.open(dest.parent, os.O_TMPFILE | os.O_WRONLY, _new_file_mode()), None
+        except OSError:
+            pass  # a file system without unnamed files
+    fd, temp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
+    os.chmod(temp, _new_file_mode())  # mkstemp's 0o600 would hide it from the group
+    return fd, temp
+
+
+def _link_named(fd: int, dest: Path) -> str:
+    """Give the unnamed file open at `fd` a new hidden name beside `dest`; that name.
+    (A directory fd makes os.link call linkat with AT_SYMLINK_FOLLOW, which the /proc
+    link of an unnamed file needs; the path is absolute, so which directory is moot.)"""
+    root = os.open("/", os.O_RDONLY)
+    try:
+        for _ in range(100):
+            temp = str(dest.parent / f".{dest.name}.{secrets.token_hex(4)}.tmp")
+            try:
+                os.link(f"/proc/self/fd/{fd}", temp, src_dir_fd=root)
+                return temp
+            except FileExistsError:
+                continue
+    finally:
+        os.close(root)
+    raise FileExistsError(f"{dest.parent}: no free temporary name")
+
+
 def write_archive(dest: Path, model: ModelIdentity, entries: Iterable[Entry],
                   force: bool = False) -> int:
     """Write a format-7 archive atomically, streaming payloads as `entries` yields them.
@@ -455,17 +488,21 @@ def write_archive(dest: Path, model: ModelIdentity, entries: Iterable[Entry],
         header = _encode_header(model)
     except Malformed as problem:
         raise ArchiveError(f"{dest}: {problem}") from None
-    fd, temp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
+    fd, temp = _unnamed_file(dest)
     try:
-        os.chmod(temp, _new_file_mode())  # mkstemp's 0o600 would hide it from the group
-        with os.fdopen(fd, "wb") as out:
+        with os.fdopen(fd, "wb", closefd=False) as out:
             size = _write_body(out, header, entries, dest)
             out.flush()
-            os.fsync(out.fileno())
+            os.fsync(fd)
+        if temp is None:  # give the unnamed file a name only now, then move it into place
+            temp = _link_named(fd, dest)
         os.replace(temp, dest)
     except BaseException:
-        Path(temp).unlink(missing_ok=True)
+        if temp is not None:
+            Path(temp).unlink(missing_ok=True)
         raise
+    finally:
+        os.close(fd)
     _fsync_directory(dest.parent)
     return size
 
