@@ -1,4 +1,4 @@
-"""The `rowcast` command: compress, list, decompress, verify.
+"""The `rowcast` command: compress, list, decompress, verify; bench and costmap to measure.
 
 Exit status: 0 success, 1 a data or verification failure, 2 a usage error. Every error is
 one line on stderr that names the file and the reason.
@@ -7,6 +7,7 @@ one line on stderr that names the file and the reason.
 from __future__ import annotations
 
 import contextlib
+import importlib.util
 import json
 import signal
 import sys
@@ -15,12 +16,14 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
+from rich import box
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.table import Table
 
-from rowcast import api, imagefile
+from rowcast import api, costmap, imagefile, measure
 from rowcast.archive import DEFAULT_PIXEL_LIMIT
-from rowcast.errors import RowcastError, UsageError
+from rowcast.errors import DataError, RowcastError, UsageError
 from rowcast.pixelformats import subpixels
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -110,8 +113,9 @@ def compress(
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
 ) -> None:
-    """Compress every file under the inputs into one archive: images coded, other files
-    kept as bytes."""
+    """Compress every file under the inputs into one archive.
+
+    Images are coded at full depth with their metadata; other files are kept as bytes."""
     with _guard(threads):
         try:
             found = api.collect_inputs(inputs, exclude or ())
@@ -224,8 +228,10 @@ def decompress(
     paths: Annotated[list[str] | None, typer.Argument(
         help="Entries to restore, by their paths in the archive (default: all).")] = None,
 ) -> None:
-    """Restore every file under its path: images with the same values, palette,
-    transparency and metadata, kept files byte for byte."""
+    """Restore every file (or those named) under its path.
+
+    Images come back with the same values, palette, transparency and metadata; kept
+    files byte for byte."""
     with _guard(threads):
         _, entries = api.read_index(archive, max_subpixels=max_subpixels)
         if paths:
@@ -279,6 +285,118 @@ def verify(
                           markup=False)
         if not check.ok:
             raise typer.Exit(1)
+
+
+@app.command()
+def bench(
+    inputs: Annotated[list[Path], typer.Argument(help="Image files and/or directories.")],
+    model: ModelOpt = None,
+    codecs: Annotated[str | None, typer.Option(
+        "--codecs", metavar="LIST", help="Comma list of baselines to measure beside rowcast: "
+        f"{', '.join(measure.BY_NAME)} (default: all).")] = None,
+    json_file: Annotated[Path | None, typer.Option(
+        "--json", metavar="FILE", help="Write every figure, per image and in total.")] = None,
+    csv_file: Annotated[Path | None, typer.Option(
+        "--csv", metavar="FILE", help="Write a row per image and codec.")] = None,
+    plot_file: Annotated[Path | None, typer.Option(
+        "--plot", metavar="FILE", help="Write a PNG chart (needs matplotlib).")] = None,
+    threads: ThreadsOpt = None,
+) -> None:
+    """Measure rowcast and conventional lossless codecs on the same images.
+
+    Bytes, bits per subpixel, encode and decode speed; every round trip is decoded and
+    compared."""
+    with _guard(threads):
+        try:
+            baselines = measure.choose(codecs)
+        except ValueError as exc:
+            raise UsageError(f"--codecs: {exc}") from None
+        for target in (json_file, csv_file, plot_file):
+            if target is not None and (target.is_dir() or not target.parent.is_dir()):
+                raise UsageError(f"{target}: not a file in an existing directory")
+        if plot_file is not None and importlib.util.find_spec("matplotlib") is None:
+            raise UsageError(f"{plot_file}: --plot needs matplotlib (pip install matplotlib)")
+        found = [f for f in api.collect_inputs(inputs) if f.action == "image"]
+        if not found:
+            raise UsageError(f"{', '.join(map(str, inputs))}: no images found")
+        engine = measure.load_engine(model)
+        pictures = ((f.name, measure.read_image(f.path)) for f in found)
+        with _bar("measuring", len(found), False) as tick:
+            measured = measure.measure_all(engine, pictures, baselines, tick)
+        data = measure.report(measured, baselines, engine.model.name)
+        if json_file is not None:
+            measure.write_atomic(json_file, json.dumps(data, indent=1).encode())
+        if csv_file is not None:
+            measure.write_atomic(csv_file, measure.csv_text(measured).encode())
+        if plot_file is not None:
+            measure.write_atomic(plot_file, measure.plot_png(data))
+        table = Table(title=f"{_plural(len(measured), 'image')}, model {engine.model.name}",
+                      box=box.SIMPLE_HEAD, pad_edge=False)
+        for column in ("codec", "images", "bytes", "bits/subpx", "enc MP/s", "dec MP/s",
+                       "skip", "fail"):
+            table.add_column(column, justify="left" if column == "codec" else "right",
+                             no_wrap=True)
+        for row in data["total"].values():
+            bpsp, enc, dec = (row[k] for k in ("bits_per_subpixel", "encode_mps", "decode_mps"))
+            table.add_row(row["codec"], str(row["images"]), str(row["bytes"]),
+                          "-" if bpsp is None else f"{bpsp:.3f}",
+                          "-" if enc is None else f"{enc:.3f}",
+                          "-" if dec is None else f"{dec:.3f}",
+                          str(row["skipped"]), str(row["failed"]))
+        out.print(table)
+        ours = data["total"][measure.ROWCAST]
+        if ours["payload_to_cross_entropy"] is not None:
+            out.print(f"rowcast: model cross-entropy {ours['cross_entropy_bits']:.0f} bits; "
+                      f"payloads {ours['payload_to_cross_entropy']:.4f} times it; extras "
+                      f"{ours['extras_bytes']} bytes", markup=False)
+        skipped: dict[tuple[str, str], int] = {}
+        for m in measured:
+            for f in m.figures.values():
+                if f.status == "failed":
+                    err.print(f"rowcast: {m.path}: {f.codec} failed: {f.reason}", markup=False)
+                elif f.status == "skipped":
+                    skipped[(f.codec, f.reason)] = skipped.get((f.codec, f.reason), 0) + 1
+        for (name, reason), count in skipped.items():
+            out.print(f"  {name} skipped {_plural(count, 'image')}: {reason}", markup=False)
+        if ours["failed"]:
+            raise DataError(f"{', '.join(map(str, inputs))}: rowcast's own round trip failed "
+                            f"on {_plural(ours['failed'], 'image')}")
+
+
+@app.command("costmap")
+def cost_map_command(
+    image: Annotated[Path, typer.Argument(help="Image file (8-bit or 1-bit formats).")],
+    output: Annotated[Path, typer.Option("--output", "-o", help="PNG to write.")],
+    model: ModelOpt = None,
+    planes: Annotated[bool, typer.Option("--planes", help="A heat map per plane.")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Replace an existing file.")] = False,
+    threads: ThreadsOpt = None,
+) -> None:
+    """Draw an image beside a map of the bits spent on each pixel.
+
+    The map sums to the model's cross-entropy for the image (needs matplotlib)."""
+    with _guard(threads):
+        if output.is_dir():
+            raise UsageError(f"{output}: is a directory")
+        if (output.exists() or output.is_symlink()) and not force:
+            raise UsageError(f"{output}: already exists (use --force to replace it)")
+        if not output.parent.is_dir():
+            raise UsageError(f"{output}: no such directory {output.parent}")
+        if importlib.util.find_spec("matplotlib") is None:
+            raise UsageError(f"{output}: costmap needs matplotlib (pip install matplotlib)")
+        picture = measure.read_image(image)
+        engine = measure.load_engine(model)
+        try:
+            costs = costmap.cost_map(engine, picture)
+        except ValueError as exc:
+            raise DataError(f"{image}: {exc}") from None
+        subpixels = picture.values.size
+        title = (f"{image.name}: {costs.cross_entropy:.0f} bits, "
+                 f"{costs.cross_entropy / subpixels:.3f} per subpixel, model {engine.model.name}")
+        measure.write_atomic(output, costmap.render_png(picture, costs, title, planes))
+        out.print(f"{output}: cost map of {image}: {costs.cross_entropy:.1f} bits by the model "
+                  f"({costs.cross_entropy / subpixels:.3f} per subpixel) and "
+                  f"{costs.tuning_bits:.1f} bits of tuning", markup=False)
 
 
 def _stop(signum: int, frame: object) -> None:

@@ -27,7 +27,7 @@ from PIL import Image
 
 from rowcast import codec, deep, varint
 from rowcast.entropy import PayloadError
-from rowcast.picture import PALETTE, Picture
+from rowcast.picture import PALETTE, Picture, interleaved
 from rowcast.pixelformats import PixelFormat
 from rowcast.predictor import Engine
 
@@ -151,12 +151,6 @@ def literal_of(picture: Picture) -> bytes:
     return np.ascontiguousarray(picture.values, dtype=dtype).tobytes()
 
 
-def _interleaved(values: np.ndarray) -> np.ndarray:
-    """(H, W) or (H, W, P) with fresh strides: imagecodecs refuses the odd strides that
-    numpy leaves on axes of length 1 of a view it calls contiguous."""
-    return (values[0] if values.shape[0] == 1 else values.transpose(1, 2, 0)).copy()
-
-
 def png_of(picture: Picture) -> bytes:
     """The values as a PNG at zlib's highest effort (a palette image with its palette, at
     the bit depth the palette needs; 1-bit packed); no metadata."""
@@ -170,7 +164,7 @@ def png_of(picture: Picture) -> bytes:
         buffer = io.BytesIO()
         image.save(buffer, "PNG", optimize=True)
         return buffer.getvalue()
-    return bytes(imagecodecs.png_encode(_interleaved(picture.values), level=9))
+    return bytes(imagecodecs.png_encode(interleaved(picture.values), level=9))
 
 
 def _from_png(fmt: PixelFormat, width: int, height: int, payload: bytes) -> np.ndarray:

@@ -44,7 +44,7 @@ import numpy as np
 import tifffile
 from PIL import Image
 
-from rowcast.picture import PALETTE, TRANSPARENCY, Picture, validate
+from rowcast.picture import PALETTE, TRANSPARENCY, Picture, interleaved, validate
 from rowcast.pixelformats import pixel_format
 
 MAX_BYTES = 1 << 31  # the largest picture, in bytes of values, that a reader allocates
@@ -241,13 +241,6 @@ def _planes(pixels: np.ndarray, planes: int, h: int, w: int, dtype: str) -> np.n
     return np.ascontiguousarray(arr, dtype=dtype)
 
 
-def _interleaved(values: np.ndarray) -> np.ndarray:
-    """(h, w) or (h, w, planes) in a fresh C-ordered array: encoders check the strides,
-    which numpy leaves unusual on dimensions of length 1."""
-    hwc = values.transpose(1, 2, 0)
-    return (hwc[..., 0] if values.shape[0] == 1 else hwc).copy()
-
-
 def _chunk(name: str, data: bytes) -> bytes:
     """One PNG chunk: length, type, data, CRC of type and data (the specification's layout)."""
     raw = name.encode("latin-1")
@@ -294,7 +287,7 @@ def _encode_png(picture: Picture) -> bytes:
         head = [_chunk("IHDR", struct.pack(">IIBBBBB", w, h, depth, ctype, 0, 0, 0))]
         image = [_chunk("IDAT", zlib.compress(_pack_rows(plane, depth), 9))]
     else:
-        coded = imagecodecs.png_encode(_interleaved(v))
+        coded = imagecodecs.png_encode(interleaved(v))
         parts, _ = _png_chunks(io.BytesIO(coded), all_data=True)
         ihdr = struct.pack(">IIBBBBB", w, h, depth, ctype, 0, 0, 0)
         made = bytearray(parts[0].data)
@@ -532,7 +525,7 @@ def _encode_tiff(picture: Picture) -> bytes:
         if code in _TIFF_STRUCTURE or data[0] not in _TIFF_ITEM:
             raise _Bad(f"tiff:{code} cannot be written as a TIFF tag")
         extratags.append((code, data[0], None, data[1:], True))
-    array = _interleaved(v).astype(bool) if fmt.bits == 1 else _interleaved(v)
+    array = interleaved(v).astype(bool) if fmt.bits == 1 else interleaved(v)
     out = io.BytesIO()
     tifffile.imwrite(out, array, byteorder="<", extratags=extratags,
                      **options)
@@ -650,7 +643,7 @@ def _pillow_image(picture: Picture) -> Image.Image:
         im = Image.frombytes("P", (picture.width, picture.height), v[0].tobytes())
         im.putpalette(picture.extra(PALETTE) or b"", "RGB")
         return im
-    return Image.fromarray(_interleaved(v), picture.format)
+    return Image.fromarray(interleaved(v), picture.format)
 
 
 # --------------------------------------------------------------------------- PNM
@@ -804,7 +797,7 @@ def _encode_pnm(picture: Picture) -> bytes:
     if fmt.bits == 1:
         raster = np.packbits(1 - v[0], axis=1).tobytes()
     else:
-        raster = _interleaved(v).astype(">u2" if maxval > 255 else np.uint8).tobytes()
+        raster = interleaved(v).astype(">u2" if maxval > 255 else np.uint8).tobytes()
     return b"\n".join(lines) + b"\n" + raster
 
 

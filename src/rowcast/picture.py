@@ -75,6 +75,18 @@ def value_bytes(values: np.ndarray) -> bytes:
     return np.ascontiguousarray(values, dtype=np.uint8).tobytes()
 
 
+def interleaved(values: np.ndarray) -> np.ndarray:
+    """Values (P, H, W) as (H, W) for one plane, else (H, W, P), in a fresh C-ordered array:
+    encoders check the strides, which numpy leaves unusual on axes of length 1."""
+    hwc = values.transpose(1, 2, 0)
+    return (hwc[..., 0] if values.shape[0] == 1 else hwc).copy()
+
+
+def planar(array: np.ndarray) -> np.ndarray:
+    """An image array (H, W) or (H, W, P) as values (P, H, W), C-ordered."""
+    return np.ascontiguousarray(array[None] if array.ndim == 2 else array.transpose(2, 0, 1))
+
+
 def checksum(values: np.ndarray, extras: bytes = b"") -> bytes:
     """SHA-256 of the packed extras followed by the values (`value_bytes`)."""
     digest = hashlib.sha256(extras)
