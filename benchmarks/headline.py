@@ -7,7 +7,10 @@ writes. Writes HEADLINE.md, headline.json and headline.png into --out (default: 
 folder). Needs scikit-image and matplotlib.
 
   python benchmarks/headline.py [--sizes 32,64,128] [--model MODEL] [--codecs LIST]
-                                [--out DIR]
+                                [--out DIR] [--sci-every 8]
+
+With the shared corpus beside the project, every 8th 16-bit scientific thumbnail of
+../shared/corpus/thumbs/sci is measured too (the codecs that keep 16 bits).
 """
 
 from __future__ import annotations
@@ -24,6 +27,20 @@ from rowcast.picture import Picture
 
 HERE = Path(__file__).resolve().parent
 SETS = (("RGB", RGB_PHOTOS), ("L", GRAY_PHOTOS))
+SCI = HERE.parent.parent / "shared" / "corpus" / "thumbs" / "sci"  # never used in training
+
+
+def sixteen_bit(every: int) -> list[tuple[str, Picture]]:
+    """Every `every`-th 16-bit gray thumbnail of the shared corpus's scientific images, in
+    sorted order (none when the corpus is not there)."""
+    if not every or not SCI.is_dir():
+        return []
+    chosen = []
+    for path in sorted(SCI.rglob("*.png")):
+        picture = measure.read_image(path)
+        if picture.format == "L16":
+            chosen.append((path.relative_to(SCI).as_posix(), picture))
+    return chosen[::every]
 
 
 def pictures(size: int, mode: str, names: tuple[str, ...]) -> list[tuple[str, Picture]]:
@@ -53,7 +70,8 @@ def markdown(groups: list[dict], everything: dict, codecs: list[str], seconds: f
     for g in groups:
         lines.append(f"| {g['set']} | {g['size']} | {g['images']} | " + " | ".join(
             cell(g["total"][c]["bits_per_subpixel"]) for c in codecs) + " |")
-    lines.append("| all | | " + str(len(everything["images"])) + " | " + " | ".join(
+    lines.append("| all (each codec: the images it keeps) | | "
+                 + str(len(everything["images"])) + " | " + " | ".join(
         cell(everything["total"][c]["bits_per_subpixel"]) for c in codecs) + " |")
     lines += ["", "## Speed, megapixels per second, one image per call (encode / decode)", "",
               head, rule]
@@ -75,6 +93,8 @@ def main() -> None:
     parser.add_argument("--model", type=Path, default=None, help="model (default: bundled)")
     parser.add_argument("--codecs", default=None, help="baselines, comma list (default: all)")
     parser.add_argument("--out", type=Path, default=HERE, help="folder to write into")
+    parser.add_argument("--sci-every", type=int, default=8,
+                        help="every n-th 16-bit scientific thumbnail (0: none)")
     args = parser.parse_args()
     baselines = measure.choose(args.codecs)
     codecs = [measure.ROWCAST, *(b.name for b in baselines)]
@@ -90,6 +110,15 @@ def main() -> None:
             print(f"{mode} {size}: " + ", ".join(
                 f"{c} {cell(groups[-1]['total'][c]['bits_per_subpixel'])}" for c in codecs),
                 flush=True)
+    deep = sixteen_bit(args.sci_every)
+    if deep:
+        measured = measure.measure_all(engine, deep, baselines)
+        everything += measured
+        groups.append({"set": "L16 (sci)", "size": "18-256", "images": len(measured),
+                       "total": measure.totals(measured, codecs)})
+        print("L16: " + ", ".join(
+            f"{c} {cell(groups[-1]['total'][c]['bits_per_subpixel'])}" for c in codecs),
+            flush=True)
     seconds = time.perf_counter() - start
     data = measure.report(everything, baselines, engine.model.name)
     data["groups"] = groups

@@ -286,3 +286,18 @@ def test_a_folder_without_images_is_a_usage_error(tmp_path: Path) -> None:
     result = runner.invoke(app, ["bench", str(tmp_path)])
     assert result.exit_code == 2
     assert result.stderr.splitlines() == [f"rowcast: error: {tmp_path}: no images found"]
+
+
+def test_baseline_figures_match_the_codec_libraries_called_directly() -> None:
+    """External reference: the bytes bench reports for JPEG XL, JPEG-LS and PNG are the
+    lengths imagecodecs itself gives for the same values and settings."""
+    import imagecodecs
+
+    picture = PICTURES["RGB"]
+    array = picture.values.transpose(1, 2, 0).copy()
+    direct = {"jxl": imagecodecs.jpegxl_encode(array, lossless=True, effort=9),
+              "jpegls": imagecodecs.jpegls_encode(array, level=0),
+              "png": imagecodecs.png_encode(array, level=9)}
+    for name, data in direct.items():
+        fig = measure.measure_baseline(measure.BY_NAME[name], picture)
+        assert (fig.status, fig.bytes) == ("ok", len(data)), name
