@@ -239,8 +239,8 @@ def test_an_unknown_even_header_field_is_ignored(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize(("fields", "reason"), [
-    (tagged(1, MODEL.sha256) + tagged(2, b"m") + tagged(3, b"model"),
-     "header field 3 needs a newer rowcast"),
+    (tagged(1, MODEL.sha256) + tagged(2, b"m") + tagged(5, b"model"),
+     "header field 5 needs a newer rowcast"),
     (tagged(2, b"m") + tagged(1, MODEL.sha256), "out of order"),
     (tagged(1, MODEL.sha256), "lacks the model's name or SHA-256"),
     (tagged(2, b"m"), "lacks the model's name or SHA-256"),
@@ -683,3 +683,30 @@ def test_normalise_path_refuses_unsafe_paths(bad: str) -> None:
         normalise_path(bad)
     assert caught.value.args[0].startswith(repr(bad))
     assert "\n" not in caught.value.args[0]
+
+
+def test_an_embedded_model_is_header_field_3_and_read_back_whole(tmp_path: Path) -> None:
+    """FORMAT.md: tag 3 holds the model file's bytes after the name; the reader returns
+    them with the identity, and the container never looks inside them."""
+    model_file = bytes(range(256)) * 40
+    dest = tmp_path / "embedded.rowcast"
+    write_archive(dest, ModelIdentity(MODEL.name, MODEL.sha256, model_file), [image("a")])
+    expected = header(tagged(1, MODEL.sha256) + tagged(2, MODEL.name.encode())
+                      + tagged(3, model_file))
+
+    assert dest.read_bytes().startswith(expected)
+    ident, (entry,) = read_index(dest)
+    assert ident == ModelIdentity(MODEL.name, MODEL.sha256, model_file)
+    assert ident.embedded == model_file and entry.path == "a"
+
+
+@pytest.mark.parametrize(("length", "reason"), [
+    (0, "embedded model field is 0 bytes"),
+    (2**24 + 1, "embedded model field is 16777217 bytes"),
+    (5000, "truncated file"),  # declared longer than the file: refused before reading
+])
+def test_an_embedded_model_field_of_a_wrong_length_is_refused(tmp_path: Path, length: int,
+                                                                reason: str) -> None:
+    fields = (tagged(1, MODEL.sha256) + tagged(2, MODEL.name.encode()) + num(3) + num(length)
+              + b"\x00" * min(length, 10))
+    refused(tmp_path, build([], head=header(fields)), reason)

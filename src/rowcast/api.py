@@ -35,7 +35,7 @@ from rowcast.picture import (
 )
 from rowcast.pixelformats import BY_NAME
 from rowcast.predictor import Engine
-from rowcast.quantize import IntModel, ModelError, bundled_model, load_model
+from rowcast.quantize import IntModel, ModelError, bundled_model, load_model, model_from_bytes
 
 DEFAULT_BATCH = 32
 GROUP_IMAGES = 32  # images read and coded together while compressing
@@ -122,9 +122,32 @@ def _model(path: Path | str | None) -> IntModel:
         raise UsageError(str(exc)) from None
 
 
-def identity(model: IntModel) -> ModelIdentity:
-    """The archive's record of a model."""
-    return ModelIdentity(model.name, model.sha256)
+def identity(model: IntModel, embed: bool = False) -> ModelIdentity:
+    """The archive's record of a model, with the model file itself when `embed`."""
+    return ModelIdentity(model.name, model.sha256, model.file if embed else b"")
+
+
+def _archive_model(src: Path, ident: ModelIdentity, model: Path | str | None) -> IntModel:
+    """The model that decodes an archive: the one named by `model`, else the one the
+    archive embeds, else the bundled model of that identity; UsageError when it is not the
+    model that coded the archive, naming both."""
+    if model is not None:
+        net = _model(model)
+    elif ident.embedded:
+        try:
+            net = model_from_bytes(ident.embedded, f"{src}: embedded model")
+        except ModelError as exc:
+            raise DataError(str(exc)) from None
+        if net.sha256 != ident.sha256:
+            raise DataError(f"{src}: the embedded model is not the model the archive records "
+                            f"({ident.name}, {ident.sha256.hex()[:12]})")
+    else:
+        net = bundled_model(ident.sha256) or _model(None)
+    if net.sha256 != ident.sha256:
+        raise UsageError(f"{src}: was made with model {ident.name} "
+                         f"({ident.sha256.hex()[:12]}), not {net.name} "
+                         f"({net.sha256.hex()[:12]}); pass that model with --model")
+    return net
 
 
 def _walk(root: Path) -> Iterator[tuple[Path, bool]]:
@@ -186,7 +209,8 @@ def _reason(exc: Exception, path: Path) -> str:
 
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
              force: bool = False, progress: Progress = None, exclude: Sequence[str] = (),
-             strip_metadata: bool = False, leave_out_refused: bool = False) -> Summary:
+             strip_metadata: bool = False, leave_out_refused: bool = False,
+             embed_model: bool = False) -> Summary:
     """Compress every file under the inputs into one archive at `dest` (atomic).
 
     Images are coded (`entrycodec`), other files kept as bytes; files matching `exclude`
@@ -250,12 +274,12 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
         yield from _coded(engine, group, strip_metadata, rows, progress)
 
     try:
-        size = archive.write_archive(dest, identity(net), entries(), force=force)
+        size = archive.write_archive(dest, identity(net, embed_model), entries(), force=force)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
     except OSError as exc:
         raise DataError(f"{exc.filename or dest}: {exc.strerror or exc}") from None
-    return Summary(dest, identity(net), rows, size)
+    return Summary(dest, identity(net, embed_model), rows, size)
 
 
 def _coded(engine: Engine, group: list[tuple[Found, str, Picture]], stripped: bool,
@@ -329,12 +353,7 @@ def _contents(src: Path, ident: ModelIdentity, entries: list[IndexEntry],
     engine = None
     coded = [e for e in entries if e.kind == "image"]
     if entrycodec.needs_engine([e.method for e in coded], [e.parts for e in coded]):
-        net = (model is None and bundled_model(ident.sha256)) or _model(model)
-        if net.sha256 != ident.sha256:
-            raise UsageError(f"{src}: was made with model {ident.name} "
-                             f"({ident.sha256.hex()[:12]}), not {net.name} "
-                             f"({net.sha256.hex()[:12]}); pass that model with --model")
-        engine = Engine(net)
+        engine = Engine(_archive_model(src, ident, model))
     chunk = max(batch, 256)
     for start in range(0, len(entries), chunk):
         part = entries[start : start + chunk]

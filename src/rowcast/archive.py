@@ -41,7 +41,7 @@ KIND_METHODS: dict[str, frozenset[str]] = {
 PART_METHODS = frozenset({"literal", "model", "tuned", "adaptive", "zlib"})
 
 # Header field tags and record extension tags: odd = a reader must understand it.
-MODEL_SHA256_TAG, MODEL_NAME_TAG = 1, 2
+MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG = 1, 2, 3
 RESTORE_AS_TAG, REASON_TAG, CARRIES_TAG, PARTS_TAG = 1, 2, 4, 6
 
 TRAILER = struct.Struct("<QQI4s")  # index offset, index length, index CRC32, end mark
@@ -49,6 +49,7 @@ PREFIX = struct.Struct("<8sH")  # magic, version
 _CRC = struct.Struct("<I")
 
 MAX_NAME_BYTES = 255  # the model name; and each path component
+MAX_MODEL_BYTES = 2**24  # an embedded model file
 MAX_PATH_BYTES = 2**16 - 1
 MAX_DIMENSION = 2**32 - 1
 DIGEST_BYTES = 32
@@ -83,10 +84,12 @@ class Malformed(Exception):
 
 @dataclass(frozen=True)
 class ModelIdentity:
-    """Which model coded an archive: its name and the SHA-256 of its canonical bytes."""
+    """Which model coded an archive: its name and the SHA-256 of its canonical bytes, and
+    the model file itself when the archive carries it (`embedded`, opaque to the container)."""
 
     name: str
     sha256: bytes
+    embedded: bytes = field(default=b"", repr=False)
 
 
 @dataclass(frozen=True)
@@ -299,9 +302,12 @@ def _encode_header(model: ModelIdentity) -> bytes:
         raise Malformed(f"model name longer than {MAX_NAME_BYTES} UTF-8 bytes")
     if len(model.sha256) != DIGEST_BYTES:
         raise Malformed(f"model SHA-256 is {len(model.sha256)} bytes, expected {DIGEST_BYTES}")
+    if len(model.embedded) > MAX_MODEL_BYTES:
+        raise Malformed(f"embedded model of {len(model.embedded)} bytes, over {MAX_MODEL_BYTES}")
+    embedded = _field(MODEL_FILE_TAG, model.embedded) if model.embedded else b""
     head = (PREFIX.pack(MAGIC, VERSION)
             + _field(MODEL_SHA256_TAG, bytes(model.sha256)) + _field(MODEL_NAME_TAG, name)
-            + b"\0")
+            + embedded + b"\0")
     return head + _CRC.pack(zlib.crc32(head))
 
 
@@ -583,7 +589,9 @@ def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int]:
             raise Malformed(f"model SHA-256 field is {length} bytes")
         if tag == MODEL_NAME_TAG and length > MAX_NAME_BYTES:
             raise Malformed(f"model name field is {length} bytes")
-        if tag in (MODEL_SHA256_TAG, MODEL_NAME_TAG):
+        if tag == MODEL_FILE_TAG and not 0 < length <= MAX_MODEL_BYTES:
+            raise Malformed(f"embedded model field is {length} bytes")
+        if tag in (MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG):
             values[tag] = reader.take(length)
         else:
             reader.skip(length)
@@ -598,7 +606,7 @@ def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int]:
     if MODEL_SHA256_TAG not in values or MODEL_NAME_TAG not in values:
         raise Malformed("header lacks the model's name or SHA-256")
     name = _check_text(decode_utf8(values[MODEL_NAME_TAG], "model name"), "model name")
-    return ModelIdentity(name, values[MODEL_SHA256_TAG]), end
+    return ModelIdentity(name, values[MODEL_SHA256_TAG], values.get(MODEL_FILE_TAG, b"")), end
 
 
 def read_trailer(f: BinaryIO, size: int, header_end: int) -> tuple[int, int, int]:

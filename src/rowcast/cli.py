@@ -109,6 +109,9 @@ def compress(
     leave_out_refused: Annotated[bool, typer.Option(
         "--leave-out-refused", help="Archive everything else when some files cannot be "
         "kept, and record those as left out with the reason.")] = False,
+    embed_model: Annotated[bool, typer.Option(
+        "--embed-model", help="Store the model file in the archive, so that decoding needs "
+        "no model file (its bytes count in the archive's size).")] = False,
     quiet: QuietOpt = False,
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
@@ -123,7 +126,8 @@ def compress(
                 summary = api.compress(inputs, output, model=model, force=force,
                                        progress=tick, exclude=exclude or (),
                                        strip_metadata=strip_metadata,
-                                       leave_out_refused=leave_out_refused)
+                                       leave_out_refused=leave_out_refused,
+                                       embed_model=embed_model)
         except api.RefusedError as exc:
             _refused(exc)
         if as_json:
@@ -131,6 +135,7 @@ def compress(
                                   "images": summary.count("image"),
                                   "files_kept": summary.count("file"),
                                   "left_out": summary.count("left out"),
+                                  "model_embedded_bytes": len(summary.model.embedded),
                                   "image_bytes": summary.image_bytes,
                                   "subpixels": summary.subpixels,
                                   "bits_per_subpixel": summary.bits_per_subpixel,
@@ -146,10 +151,14 @@ def _plural(count: int, word: str) -> str:
     return f"{count} {word[:-1]}ies" if word.endswith("y") else f"{count} {word}s"
 
 
+def _embedded(ident) -> str:
+    return f" (embedded: {len(ident.embedded)} bytes)" if ident.embedded else ""
+
+
 def _summary(output: Path, summary: api.Summary) -> None:
     images = summary.count("image")
-    out.print(f"{output}: {summary.archive_bytes} bytes, model {summary.model.name}",
-              markup=False)
+    out.print(f"{output}: {summary.archive_bytes} bytes, model {summary.model.name}"
+              f"{_embedded(summary.model)}", markup=False)
     if images:
         out.print(f"  {_plural(images, 'image')} coded: {summary.subpixels} subpixels -> "
                   f"{summary.image_bytes} bytes ({summary.bits_per_subpixel:.3f} bits per "
@@ -193,9 +202,11 @@ def list_(
                          "bits_per_subpixel": 8.0 * size / values if values else None})
         if as_json:
             out.print(json.dumps({"model": ident.name, "model_sha256": ident.sha256.hex(),
+                                  "model_embedded_bytes": len(ident.embedded),
                                   "entries": rows}), markup=False)
             return
-        out.print(f"model {ident.name} sha256 {ident.sha256.hex()[:16]}", markup=False)
+        out.print(f"model {ident.name} sha256 {ident.sha256.hex()[:16]}{_embedded(ident)}",
+                  markup=False)
         width = max([len(r["path"]) for r in rows] + [4])
         out.print(f"{'path':<{width}}  {'format':<7} {'width':>5} {'height':>6} {'bytes':>8} "
                   f"{'bpsp':>6}  {'method':<16} notes", markup=False)

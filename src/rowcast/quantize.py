@@ -63,6 +63,7 @@ class IntModel:
     card: dict
     layers: tuple[IntLayer, ...]
     sha256: bytes
+    file: bytes = b""  # the model file's bytes, as an archive embeds them
 
     @property
     def depth(self) -> int:
@@ -211,7 +212,7 @@ def model_from_bytes(data: bytes, origin: str) -> IntModel:
         if layer.bound * int(layer.mult.max()) >= EXACT_F64 // 2:  # see requantise
             raise ModelError(f"{origin}: layer {i}'s requantisation is not exact in float64")
     sha = hashlib.sha256(canonical_bytes(card, tensors)).digest()
-    return IntModel(card["name"], card, layers, sha)
+    return IntModel(card["name"], card, layers, sha, bytes(data))
 
 
 
