@@ -22,12 +22,11 @@ from datetime import date
 from pathlib import Path
 
 import numpy as np
-import torch
 import typer
 from PIL import Image
 
 import rowcast
-from rowcast import codec
+from rowcast import codec, workers
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
@@ -178,7 +177,7 @@ def _floor_ratio(figures: dict) -> float:
 
 def main(model: Path | None = None, threads: int = 2, batch: int = 32) -> None:
     """Run everything, print the figures, write RESULTS.md and results.json."""
-    torch.set_num_threads(threads)
+    workers.set_threads(threads)
     memory = MemoryPeak()
     memory.start()
     engine = Engine(load_model(model))
@@ -197,8 +196,8 @@ def main(model: Path | None = None, threads: int = 2, batch: int = 32) -> None:
     results = {
         "date": date.today().isoformat(),
         "command": "python benchmarks/bench.py " + " ".join(sys.argv[1:]),
-        "machine": f"{platform.machine()}, {torch.get_num_threads()} torch threads, "
-                   f"python {platform.python_version()}, torch {torch.__version__}",
+        "machine": f"{platform.machine()}, {workers.threads()} threads, "
+                   f"python {platform.python_version()}, numpy {np.__version__}",
         "model": engine.model.name,
         "model_sha256": engine.model.sha256.hex(),
         "batch": batch,
