@@ -261,6 +261,23 @@ def test_an_image_over_the_subpixel_limit_is_refused_before_decoding(made: Made,
     assert run(command, made.archive, *args, "--max-subpixels", "360").exit_code == 0
 
 
+@pytest.mark.parametrize("command", ["list", "verify", "decompress"])
+def test_an_index_of_more_entries_than_the_limit_is_refused(made: Made, tmp_path: Path,
+                                                            command: str) -> None:
+    """--max-entries bounds the index a command holds (a crafted index of tens of millions
+    of tiny records would otherwise fill memory): one entry over it is refused, naming the
+    limit; at the limit every command works."""
+    args = {"list": [], "verify": ["--model", TINY],
+            "decompress": ["--model", TINY, "-o", tmp_path / "out"]}[command]
+    count = len(SOURCES)
+
+    line = error_line(run(command, made.archive, *args, "--max-entries", count - 1), 1,
+                      made.archive)
+    assert line.endswith(f"more than {count - 1} entries, the limit for reading an index whole")
+    assert not (tmp_path / "out").exists()
+    assert run(command, made.archive, *args, "--max-entries", count).exit_code == 0
+
+
 def test_decompress_of_an_entry_not_in_the_archive_is_a_usage_error(made: Made,
                                                                     tmp_path: Path) -> None:
     result = run("decompress", made.archive, "sub/nope.png", "-o", tmp_path / "x", "--model", TINY)

@@ -326,16 +326,18 @@ def _left_out(name: str, reason: str, rows: list[dict]) -> Entry:
     return Entry(name, "left out", "", 0, 0, "none", bytes(32), b"", reason=reason)
 
 
-def read_index(src: Path | str, *, max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT
+def read_index(src: Path | str, *, max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT,
+               max_entries: int = archive.DEFAULT_ENTRY_LIMIT
                ) -> tuple[ModelIdentity, list[IndexEntry]]:
     """The model identity and entries of an archive, without decoding anything; an image
     entry declaring more than `max_subpixels` (width x height x planes) is refused before
-    anything is allocated for it."""
+    anything is allocated for it, and an index of more than `max_entries` entries once it
+    passes that many."""
     src = Path(src)
     if not src.exists():
         raise UsageError(f"{src}: no such file")
     try:
-        return archive.read_index(src, pixel_limit=max_subpixels)
+        return archive.read_index(src, pixel_limit=max_subpixels, entry_limit=max_entries)
     except ArchiveError as exc:
         raise DataError(str(exc)) from None
     except OSError as exc:
@@ -421,13 +423,14 @@ def _selected(src: Path, entries: list[IndexEntry], paths: Sequence[str]) -> lis
 def decode_entries(src: Path | str, *, model: Path | str | None = None,
                    batch: int = DEFAULT_BATCH, progress: Progress = None,
                    only: Sequence[str] | None = None,
-                   max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT
+                   max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT,
+                   max_entries: int = archive.DEFAULT_ENTRY_LIMIT
                    ) -> Iterator[tuple[IndexEntry, Content]]:
     """Decode an archive's entries (or those named in `only`), checking each checksum:
     (entry, Picture) for images, (entry, bytes) for kept files, (entry, None) for files
     left out. Raises DataError at the first entry that does not decode."""
     src = Path(src)
-    ident, entries = read_index(src, max_subpixels=max_subpixels)
+    ident, entries = read_index(src, max_subpixels=max_subpixels, max_entries=max_entries)
     if only is not None:
         entries = _selected(src, entries, only)
     for e, content in _contents(src, ident, entries, model, batch, progress):
@@ -439,7 +442,8 @@ def decode_entries(src: Path | str, *, model: Path | str | None = None,
 def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None = None,
                force: bool = False, batch: int = DEFAULT_BATCH, progress: Progress = None,
                only: Sequence[str] | None = None,
-               max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT) -> Restored:
+               max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT,
+               max_entries: int = archive.DEFAULT_ENTRY_LIMIT) -> Restored:
     """Restore every entry that decodes (or those whose paths `only` names) under
     `outdir`, each under its path (images in their own container where it can hold them
     exactly, else as PNG under the recorded name), and name each one that does not.
@@ -448,7 +452,7 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
     src, outdir = Path(src), Path(outdir)
     if outdir.exists() and not outdir.is_dir():
         raise UsageError(f"{outdir}: not a directory")
-    ident, entries = read_index(src, max_subpixels=max_subpixels)
+    ident, entries = read_index(src, max_subpixels=max_subpixels, max_entries=max_entries)
     if only is not None:
         entries = _selected(src, entries, only)
     kept = [e for e in entries if e.kind != "left out"]
@@ -530,13 +534,14 @@ def _put_in_place(moves: list[tuple[Path, Path]], outdir: Path, stage: Path) -> 
 def verify(src: Path | str, *, against: Path | str | None = None,
            model: Path | str | None = None, batch: int = DEFAULT_BATCH,
            progress: Progress = None,
-           max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT) -> Check:
+           max_subpixels: int = archive.DEFAULT_PIXEL_LIMIT,
+           max_entries: int = archive.DEFAULT_ENTRY_LIMIT) -> Check:
     """Decode every entry and check its checksum; with `against`, also compare every
     image's values at full depth, its palette, transparency and metadata, and every kept
     file's bytes with the files there, and require every file there to be accounted for
     (coded, kept, or recorded as left out)."""
     src = Path(src)
-    ident, entries = read_index(src, max_subpixels=max_subpixels)
+    ident, entries = read_index(src, max_subpixels=max_subpixels, max_entries=max_entries)
     problems: list[str] = []
     originals: dict[str, Path] = {}
     if against is not None:

@@ -29,6 +29,7 @@ MAGIC = b"ROWCAST\xe5"
 VERSION = 7
 END_MARK = b"RCIX"
 DEFAULT_PIXEL_LIMIT = 2**28  # subpixels (width x height x planes) of one declared image
+DEFAULT_ENTRY_LIMIT = 2**21  # entries read_index holds at once (about 0.8 GB of them)
 
 IMAGE, FILE, LEFT_OUT = "image", "file", "left out"
 KINDS: dict[str, int] = {IMAGE: 1, FILE: 2, LEFT_OUT: 3}
@@ -912,12 +913,19 @@ def iter_index(src: Path, *, pixel_limit: int = DEFAULT_PIXEL_LIMIT
     return model, _stream(src, pixel_limit)
 
 
-def read_index(src: Path, *, pixel_limit: int = DEFAULT_PIXEL_LIMIT
-               ) -> tuple[ModelIdentity, list[IndexEntry]]:
+def read_index(src: Path, *, pixel_limit: int = DEFAULT_PIXEL_LIMIT,
+               entry_limit: int = DEFAULT_ENTRY_LIMIT) -> tuple[ModelIdentity, list[IndexEntry]]:
     """Read and check an archive's header, trailer and index (any format version 1 to 7)
-    without touching payloads."""
+    without touching payloads. More than `entry_limit` entries are refused when the limit
+    is passed, so the list never outgrows it (`iter_index` streams any number)."""
     model, entries = iter_index(src, pixel_limit=pixel_limit)
-    return model, list(entries)
+    listed = []
+    for entry in entries:
+        if len(listed) == entry_limit:
+            raise ArchiveError(f"{src}: more than {entry_limit} entries, the limit for reading "
+                               "an index whole")
+        listed.append(entry)
+    return model, listed
 
 
 def _payload_area(f: BinaryIO, size: int) -> tuple[int, int]:

@@ -22,7 +22,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 
 from rowcast import api, costmap, imagefile, measure
-from rowcast.archive import DEFAULT_PIXEL_LIMIT
+from rowcast.archive import DEFAULT_ENTRY_LIMIT, DEFAULT_PIXEL_LIMIT
 from rowcast.errors import DataError, RowcastError, UsageError
 from rowcast.pixelformats import subpixels
 
@@ -37,6 +37,9 @@ ModelOpt = Annotated[Path | None, typer.Option(
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Machine-readable output.")]
 BatchOpt = Annotated[int, typer.Option("--batch", min=1, help="Images decoded together.")]
+EntriesOpt = Annotated[int, typer.Option(
+    "--max-entries", min=1, help="Refuse an archive of more entries than this (memory for "
+    "its index grows with them).")]
 LimitOpt = Annotated[int, typer.Option(
     "--max-subpixels", min=1, help="Refuse an archive declaring an image of more subpixels "
     "(width x height x planes) than this, before decoding anything.")]
@@ -185,10 +188,12 @@ def list_(
     archive: Annotated[Path, typer.Argument(help="Archive to read.")],
     as_json: JsonOpt = False,
     max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
+    max_entries: EntriesOpt = DEFAULT_ENTRY_LIMIT,
 ) -> None:
     """List an archive's entries without decoding them."""
     with _guard(None):
-        ident, entries = api.read_index(archive, max_subpixels=max_subpixels)
+        ident, entries = api.read_index(archive, max_subpixels=max_subpixels,
+                                        max_entries=max_entries)
         entries = sorted(entries, key=lambda e: e.path)
         rows = []
         for e in entries:
@@ -236,6 +241,7 @@ def decompress(
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
     max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
+    max_entries: EntriesOpt = DEFAULT_ENTRY_LIMIT,
     paths: Annotated[list[str] | None, typer.Argument(
         help="Entries to restore, by their paths in the archive (default: all).")] = None,
 ) -> None:
@@ -244,13 +250,14 @@ def decompress(
     Images come back with the same values, palette, transparency and metadata; kept
     files byte for byte."""
     with _guard(threads):
-        _, entries = api.read_index(archive, max_subpixels=max_subpixels)
+        _, entries = api.read_index(archive, max_subpixels=max_subpixels,
+                                    max_entries=max_entries)
         if paths:
             entries = [e for e in entries if e.path in set(paths)]
         with _bar("decoding rows", _rows_total(entries), quiet) as tick:
             restored = api.decompress(archive, output, model=model, force=force, batch=batch,
                                       progress=tick, only=paths or None,
-                                      max_subpixels=max_subpixels)
+                                      max_subpixels=max_subpixels, max_entries=max_entries)
         for line in restored.failed:
             err.print(f"rowcast: {line}", markup=False)
         if not quiet:
@@ -275,15 +282,17 @@ def verify(
     batch: BatchOpt = api.DEFAULT_BATCH,
     threads: ThreadsOpt = None,
     max_subpixels: LimitOpt = DEFAULT_PIXEL_LIMIT,
+    max_entries: EntriesOpt = DEFAULT_ENTRY_LIMIT,
 ) -> None:
     """Decode everything; exit 0 only if every checksum (and every file) matches."""
     with _guard(threads):
         if against is not None and not against.is_dir():
             raise UsageError(f"{against}: not a directory (--against)")
-        _, entries = api.read_index(archive, max_subpixels=max_subpixels)
+        _, entries = api.read_index(archive, max_subpixels=max_subpixels,
+                                    max_entries=max_entries)
         with _bar("verifying rows", _rows_total(entries), quiet or as_json) as tick:
             check = api.verify(archive, against=against, model=model, batch=batch, progress=tick,
-                               max_subpixels=max_subpixels)
+                               max_subpixels=max_subpixels, max_entries=max_entries)
         if as_json:
             out.print(json.dumps({"ok": check.ok, "checked": check.checked,
                                   "problems": check.problems}), markup=False)
