@@ -164,3 +164,28 @@ def test_running_out_of_memory_is_one_line_and_a_clean_exit(tmp_path: Path) -> N
     assert result.returncode == 1
     assert result.stderr.startswith("rowcast: error: out of memory; nothing was written")
     assert result.stderr.count("\n") == 1 and "Traceback" not in result.stderr
+
+
+def test_the_next_decompress_clears_what_a_killed_one_left(tmp_path: Path) -> None:
+    """SIGKILL cannot be caught, so a killed decompress leaves its staging folder; the next
+    decompress into that folder removes it (its process is gone) and leaves exactly the
+    restored files. A staging folder of a live process is never touched."""
+    textured(tmp_path / "in", 40)
+    archive = tmp_path / "a.rowcast"
+    done = subprocess.run([*ENTRY, "compress", str(tmp_path / "in"), "-o", str(archive)],
+                          env=ENV, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    out = tmp_path / "restored"
+    stop_midway(["decompress", str(archive), "-o", str(out)],
+                lambda pid: out.exists() and any(out.iterdir()), signal.SIGKILL)
+    (left,) = out.iterdir()
+    live = out / f".rowcast-stage-{os.getpid()}-kept"
+    live.mkdir()
+
+    again = subprocess.run([*ENTRY, "decompress", str(archive), "-o", str(out)], env=ENV,
+                           capture_output=True, text=True)
+
+    assert again.returncode == 0, again.stderr
+    assert not left.exists() and live.is_dir()
+    assert sorted(p.name for p in out.iterdir()) == sorted(
+        [live.name, *(p.name for p in (tmp_path / "in").iterdir())])

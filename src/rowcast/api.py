@@ -464,7 +464,8 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
         raise UsageError(f"{clashes[0]}: already exists (use --force to replace it)")
     made = not outdir.exists()
     outdir.mkdir(parents=True, exist_ok=True)
-    stage = Path(tempfile.mkdtemp(prefix=".rowcast-", dir=outdir))
+    _remove_stale_stages(outdir)
+    stage = Path(tempfile.mkdtemp(prefix=f"{STAGE_PREFIX}{os.getpid()}-", dir=outdir))
     failed, ready = [], []
     try:
         for e, content in _contents(src, ident, kept, model, batch, progress):
@@ -489,6 +490,24 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
         if made and not any(outdir.iterdir()):
             outdir.rmdir()
     return Restored(written, failed, [e for e in entries if e.kind == "left out"])
+
+
+STAGE_PREFIX = ".rowcast-stage-"  # then the pid of the decompress that made it
+
+
+def _remove_stale_stages(outdir: Path) -> None:
+    """Remove staging folders that a decompress killed outright (SIGKILL, power loss) left
+    in `outdir`: those whose process is gone. A live one's is never touched."""
+    for stage in outdir.glob(f"{STAGE_PREFIX}*-*"):
+        pid = stage.name.removeprefix(STAGE_PREFIX).split("-", 1)[0]
+        if not pid.isdigit() or stage.is_symlink() or not stage.is_dir():
+            continue
+        try:
+            os.kill(int(pid), 0)
+        except ProcessLookupError:
+            shutil.rmtree(stage, ignore_errors=True)
+        except (PermissionError, OverflowError):
+            continue
 
 
 def _inside(outdir: Path, target: Path) -> None:
