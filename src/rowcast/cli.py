@@ -1,4 +1,5 @@
-"""The `rowcast` command: compress, list, decompress, verify; bench and costmap to measure.
+"""The `rowcast` command: compress, list, decompress, verify; bench and costmap to measure;
+train to teach the predictor a fleet's own images.
 
 Exit status: 0 success, 1 a data or verification failure, 2 a usage error. Every error is
 one line on stderr that names the file and the reason.
@@ -417,6 +418,54 @@ def cost_map_command(
         out.print(f"{output}: cost map of {image}: {costs.cross_entropy:.1f} bits by the model "
                   f"({costs.cross_entropy / subpixels:.3f} per subpixel) and "
                   f"{costs.tuning_bits:.1f} bits of tuning", markup=False)
+
+
+@app.command("train")
+def train_command(
+    inputs: Annotated[list[Path], typer.Argument(help="Directories (or files) of images to "
+                                                 "learn from.")],
+    output: Annotated[Path, typer.Option("--output", "-o", help="Model file to write.")],
+    minutes: Annotated[float, typer.Option("--minutes", help="Training time in minutes.")] = 10.0,
+    held_out: Annotated[Path | None, typer.Option(
+        "--held-out", metavar="DIR", help="Measure on the images in DIR, never trained on "
+        "(default: every 5th file of the inputs in path order).")] = None,
+    start: Annotated[str | None, typer.Option(
+        "--from", metavar="MODEL", help="Model file or bundled model name to continue from "
+        "(default: default).")] = None,
+    scratch: Annotated[bool, typer.Option("--from-scratch", help="Start from a new network "
+                                          "(hours on a CPU).")] = False,
+    name: Annotated[str | None, typer.Option("--name", help="The model's name (default: the "
+                                             "output file's stem).")] = None,
+    device: Annotated[str, typer.Option("--device", help="Where training runs: cpu, or a "
+                                        "torch device such as cuda.")] = "cpu",
+    quiet: QuietOpt = False,
+    as_json: JsonOpt = False,
+    force: Annotated[bool, typer.Option("--force", help="Replace an existing file.")] = False,
+) -> None:
+    """Adapt a model to your own images and write it as a model file.
+
+    Trains on 8-bit gray and colour images, holds part of them out, and reports what the
+    held-out files take coded with the new model, the starting one, PNG and JPEG XL."""
+    with _guard(None):
+        if start is not None and scratch:
+            raise UsageError("--from and --from-scratch: give one of them")
+        if importlib.util.find_spec("torch") is None:
+            raise UsageError(f"{output}: rowcast train needs torch (pip install torch)")
+        from rich.live import Live
+
+        from rowcast import trainjob
+
+        job = trainjob.Job(tuple(inputs), output, minutes, held_out,
+                           None if scratch else start or "default", name, device, force)
+        state = trainjob.Progress(minutes * 60)
+        live = not (quiet or as_json) and err.is_terminal
+        with Live(state, console=err, transient=True) if live else contextlib.nullcontext():
+            report = trainjob.run(job, state.update)
+        if as_json:
+            out.print(json.dumps(report.as_json()), markup=False)
+        elif not quiet:
+            for item in report.summary():
+                out.print(item, markup=False)
 
 
 def _stop(signum: int, frame: object) -> None:

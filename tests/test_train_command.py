@@ -1,0 +1,202 @@
+"""Specification of `rowcast train`: it trains on a folder's 8-bit images, holds part of them
+out reproducibly (or a whole `--held-out` folder), writes a model file that codes exactly,
+says which files it did not use and why, and reports the held-out files' coded bytes with
+the new model, the starting one, PNG and JPEG XL.
+
+A few seconds of training on these tiny images changes the tiny model's held-out bytes by a
+fraction of a percent either way, so no test asserts that training gains (see the report).
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import imagecodecs
+import numpy as np
+import pytest
+from conftest import TINY
+from PIL import Image
+from typer.testing import CliRunner, Result
+
+import rowcast
+from rowcast import measure, trainjob
+from rowcast.cli import app
+from rowcast.errors import UsageError
+from rowcast.imagefile import read_picture
+from rowcast.predictor import Engine
+from rowcast.quantize import load_model
+
+runner = CliRunner(env={"FORCE_COLOR": None, "TTY_COMPATIBLE": None})
+MINUTES = "0.04"
+
+
+def run(*args: object) -> Result:
+    """`rowcast ARGS...` in-process, as a script sees it (no terminal)."""
+    return runner.invoke(app, [str(a) for a in args])
+
+
+def domain(seed: int, size: int = 32) -> np.ndarray:
+    """A peculiar little domain: blocks of two gray levels on a fixed background, noisy."""
+    rng = np.random.default_rng(seed)
+    a = np.full((size, size), 200.0)
+    for _ in range(4):
+        y, x = rng.integers(0, size - 8, 2)
+        h, w = rng.integers(4, 12, 2)
+        a[y : y + h, x : x + w] = rng.choice([40, 90])
+    return np.clip(np.rint(a + rng.normal(0, 3, a.shape)), 0, 255).astype(np.uint8)
+
+
+def make_folder(folder: Path, count: int, others: bool = True) -> list[Path]:
+    """`count` usable images (gray, and one RGBA whose colour planes are used) plus, with
+    `others`, a 16-bit PNG, a palette PNG and a text file; returns the usable ones."""
+    folder.mkdir(parents=True)
+    usable = []
+    for i in range(count - 1):
+        usable.append(folder / f"cam{i:02d}.png")
+        Image.fromarray(domain(i)).save(usable[-1])
+    rgba = np.stack([domain(50), domain(51), domain(52), np.full((32, 32), 128, np.uint8)], 2)
+    usable.append(folder / "sub" / "overlay.png")
+    usable[-1].parent.mkdir()
+    Image.fromarray(rgba, "RGBA").save(usable[-1])
+    if others:
+        (folder / "deep.png").write_bytes(imagecodecs.png_encode(
+            domain(60).astype(np.uint16) * 257))
+        Image.fromarray(domain(61) // 64).convert("P").save(folder / "map.png")
+        (folder / "notes.txt").write_text("camera 3 log\n")
+    return usable
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, list[Path], Path, dict]:
+    """One run with --json on a folder of 10 usable images and 3 unusable files."""
+    root = tmp_path_factory.mktemp("train")
+    usable = make_folder(root / "images", 10)
+    model = root / "own.safetensors"
+    result = run("train", root / "images", "-o", model, "--from", TINY, "--minutes", MINUTES,
+                 "--json")
+    assert result.exit_code == 0, (result.stdout, result.stderr)
+    assert result.stderr == ""
+    return root / "images", usable, model, json.loads(result.stdout)
+
+
+def test_the_model_file_is_written_named_for_its_stem_and_codes_exactly(trained, tmp_path):
+    folder, _, model, report = trained
+    loaded = load_model(model)
+    assert loaded.name == "own" == report["name"]
+    assert loaded.sha256.hex() == report["sha256"]
+    assert loaded.card["training"]["commands"][-1].startswith("rowcast train ")
+    assert report["steps"] > 0 and report["from"] == str(TINY)
+    archive = tmp_path / "a.rowcast"
+    rowcast.compress([folder], archive, model=model)
+    check = rowcast.verify(archive, against=folder, model=model)
+    assert check.ok, check.problems
+
+
+def test_the_held_out_split_is_every_fifth_file_and_disjoint_from_training(trained):
+    _, usable, _, report = trained
+    names = sorted(p.as_posix() for p in usable)
+    assert report["held_out_files"] == [names[4], names[9]]
+    assert set(report["trained"]).isdisjoint(report["held_out_files"])
+    assert sorted(report["trained"] + report["held_out_files"]) == names
+    again = trainjob.split(list(reversed(usable)))
+    assert [p.as_posix() for p in again[1]] == report["held_out_files"]
+
+
+def test_the_held_out_figures_are_the_bytes_each_codec_writes(trained):
+    _, _, model, report = trained
+    held = report["held_out"]
+    pictures = [(n, measure.as_compressed(n, read_picture(Path(n))))
+                for n in report["held_out_files"]]
+    subpixels = sum(p.values.size for _, p in pictures)
+    assert held["subpixels"] == subpixels and held["files"] == 2
+    engines = {"start": Engine(load_model(TINY)), "new": Engine(load_model(model))}
+    for key, engine in engines.items():
+        assert held[key]["bytes"] == sum(measure.measure_rowcast(engine, p).bytes
+                                         for _, p in pictures)
+    for key in ("png", "jxl"):
+        assert held[key]["bytes"] == sum(
+            measure.measure_baseline(measure.BY_NAME[key], p).bytes for _, p in pictures)
+    for key in ("start", "new", "png", "jxl"):
+        assert held[key]["bits_per_subpixel"] == pytest.approx(
+            8 * held[key]["bytes"] / subpixels)
+    assert held["new_to_start"] == pytest.approx(held["new"]["bytes"] / held["start"]["bytes"])
+
+
+def test_every_file_not_trained_on_is_reported_with_its_reason(trained):
+    folder, _, _, report = trained
+    reasons = {r["reason"]: (r["count"], r["files"]) for r in report["not_trained_on"]}
+    assert reasons["not an image"] == (1, [(folder / "notes.txt").as_posix()])
+    assert reasons["16-bit image (training takes 8-bit gray and colour)"] == (
+        1, [(folder / "deep.png").as_posix()])
+    assert reasons["palette image (its values are indices, not intensities)"][0] == 1
+    assert sum(r["count"] for r in report["not_trained_on"]) == 3
+
+
+def test_a_held_out_folder_is_validated_on_whole_and_never_trained_on(tmp_path):
+    usable = make_folder(tmp_path / "images", 6, others=False)
+    check = make_folder(tmp_path / "images" / "check", 2, others=False)
+    chosen = trainjob.select([tmp_path / "images"], tmp_path / "images" / "check")
+    assert sorted(c.path for c in chosen.held) == sorted(check)
+    assert sorted(c.path for c in chosen.train) == sorted(usable)
+    assert sorted(p for p, _ in chosen.unused) == sorted(check)
+
+    result = run("train", tmp_path / "images", "-o", tmp_path / "m.safetensors", "--from",
+                 TINY, "--held-out", tmp_path / "images" / "check", "--minutes", MINUTES)
+    assert result.exit_code == 0, (result.stdout, result.stderr)
+    lines = result.stdout.splitlines()
+    assert "trained on 6 files, held out 2 files" in lines[1]
+    assert "not trained on 2 files: in the --held-out folder" in lines[2]
+    (png,) = [line.split() for line in lines if line.split()[:1] == ["PNG"]]
+    assert int(png[1]) > 0 and float(png[2]) > 0
+    assert lines[-1].startswith("  new / start: ")
+    assert load_model(tmp_path / "m.safetensors").name == "m"
+
+
+def test_the_split_needs_two_files_and_holds_out_the_last_of_few():
+    paths = [Path(f"d/{c}.png") for c in "cab"]
+    assert trainjob.split(paths) == ([Path("d/a.png"), Path("d/b.png")], [Path("d/c.png")])
+    with pytest.raises(UsageError, match="at least 2 images"):
+        trainjob.split(paths[:1])
+
+
+def test_an_existing_output_is_left_alone_without_force(tmp_path):
+    make_folder(tmp_path / "images", 3, others=False)
+    model = tmp_path / "own.safetensors"
+    model.write_bytes(b"mine")
+    result = run("train", tmp_path / "images", "-o", model, "--from", TINY)
+    assert result.exit_code == 2
+    assert result.stderr.splitlines() == [
+        f"rowcast: error: {model}: already exists (use --force to replace it)"]
+    assert model.read_bytes() == b"mine"
+
+
+@pytest.mark.parametrize(("args", "words"), [
+    (["--from", "default", "--from-scratch"], "--from-scratch"),
+    (["--from", "no-such.safetensors"], "no-such.safetensors"),
+    (["--held-out", "missing-dir"], "missing-dir"),
+    (["--minutes", "0"], "--minutes"),
+])
+def test_a_wrong_request_is_one_usage_error_line(tmp_path, args, words):
+    make_folder(tmp_path / "images", 3, others=False)
+    result = run("train", tmp_path / "images", "-o", tmp_path / "m.safetensors", *args)
+    assert result.exit_code == 2, (result.stdout, result.stderr)
+    (line,) = result.stderr.splitlines()
+    assert line.startswith("rowcast: error: ") and words in line
+    assert not (tmp_path / "m.safetensors").exists()
+
+
+def test_the_live_line_follows_the_training_log():
+    state = trainjob.Progress(budget_s=120)
+    assert state.line(0.0) == "reading images"
+    for line in ("pools: 8 photo reductions, 0 cut-out reductions, 2 validation tiles",
+                 "resuming tiny after 1000 steps, 3.0 min",
+                 "validation at the start: 4.2500 bits per subpixel"):
+        state.update(line, 10.0)
+    state.update("step 1100 3.5 min train 3.900 bpsp", 40.0)
+    assert state.line(40.0) == ("training, step 100, train 3.900 bpsp, held out 4.250 bpsp, "
+                                "1:30 left")
+    state.update(json.dumps({"steps": 1300, "train_bpsp": 3.8, "val_quant_bpsp": 4.1}), 130.0)
+    state.update("measuring the held-out files with both models", 131.0)
+    assert state.line(131.0) == ("measuring the held-out files with both models, step 300, "
+                                 "train 3.800 bpsp, held out 4.100 bpsp, 0:00 left")
