@@ -19,7 +19,14 @@ from typing import Annotated
 import typer
 from rich import box
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    TextColumn,
+    TimeElapsedColumn,
+    TimeRemainingColumn,
+)
 from rich.table import Table
 
 from rowcast import api, costmap, imagefile, measure
@@ -77,7 +84,8 @@ def _bar(label: str, total: int, quiet: bool) -> Iterator:
     if quiet or not err.is_terminal:
         yield None
         return
-    columns = (TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn())
+    columns = (TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+               TextColumn("left"), TimeRemainingColumn())
     with Progress(*columns, console=err, transient=True) as bar:
         task = bar.add_task(label, total=total)
         yield lambda n: bar.update(task, advance=n)
