@@ -344,7 +344,8 @@ def bench(
             if target is not None and (target.is_dir() or not target.parent.is_dir()):
                 raise UsageError(f"{target}: not a file in an existing directory")
         if plot_file is not None and importlib.util.find_spec("matplotlib") is None:
-            raise UsageError(f"{plot_file}: --plot needs matplotlib (pip install matplotlib)")
+            raise UsageError(f"{plot_file}: --plot needs matplotlib "
+                             "(pip install 'rowcast[bench]')")
         found = [f for f in api.collect_inputs(inputs) if f.action == "image"]
         if not found:
             raise UsageError(f"{', '.join(map(str, inputs))}: no images found")
@@ -412,7 +413,8 @@ def cost_map_command(
         if not output.parent.is_dir():
             raise UsageError(f"{output}: no such directory {output.parent}")
         if importlib.util.find_spec("matplotlib") is None:
-            raise UsageError(f"{output}: costmap needs matplotlib (pip install matplotlib)")
+            raise UsageError(f"{output}: costmap needs matplotlib "
+                             "(pip install 'rowcast[bench]')")
         picture = measure.read_image(image)
         engine = measure.load_engine(model)
         try:
@@ -458,7 +460,8 @@ def train_command(
         if start is not None and scratch:
             raise UsageError("--from and --from-scratch: give one of them")
         if importlib.util.find_spec("torch") is None:
-            raise UsageError(f"{output}: rowcast train needs torch (pip install torch)")
+            raise UsageError(f"{output}: rowcast train needs torch (pip install "
+                             "'rowcast[train]'; its CPU build is enough)")
         from rich.live import Live
 
         from rowcast import trainjob
