@@ -35,3 +35,20 @@ def rgb64() -> list[np.ndarray]:
 def gray64() -> list[np.ndarray]:
     """64-px gray thumbnails of scikit-image's gray photographs."""
     return [p for _, p in thumbnails(GRAY_PHOTOS, "L", 64)]
+
+
+def assert_flips_refused(original: bytes, positions, masks: tuple[int, ...], damaged: Path,
+                         reader) -> None:
+    """Each byte at `positions` of `original`, flipped by each mask and written to
+    `damaged`, makes `reader(damaged)` raise ArchiveError with one line naming the file."""
+    from rowcast.archive import ArchiveError
+
+    for position in positions:
+        for mask in masks:
+            data = bytearray(original)
+            data[position] ^= mask
+            damaged.write_bytes(bytes(data))
+            with pytest.raises(ArchiveError) as caught:
+                reader(damaged)
+            assert caught.value.args[0].startswith(f"{damaged}: ")
+            assert "\n" not in caught.value.args[0]

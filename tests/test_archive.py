@@ -15,6 +15,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from conftest import assert_flips_refused
 
 from rowcast import archive
 from rowcast.archive import (
@@ -505,15 +506,7 @@ def test_single_byte_flips_in_header_index_and_trailer_are_refused(tmp_path: Pat
     positions = [*range(head), *range(offset, len(original), 3),
                  *range(len(original) - TRAILER.size, len(original))]
     damaged = tmp_path / "damaged.rowcast"
-    for position in positions:
-        for mask in (0x01, 0x80):
-            data = bytearray(original)
-            data[position] ^= mask
-            damaged.write_bytes(bytes(data))
-            with pytest.raises(ArchiveError) as caught:
-                read_index(damaged)
-            assert caught.value.args[0].startswith(f"{damaged}: ")
-            assert "\n" not in caught.value.args[0]
+    assert_flips_refused(original, positions, (0x01, 0x80), damaged, read_index)
     for position in range(head, offset, 5):
         data = bytearray(original)
         data[position] ^= 0xFF

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import GOLDEN
+from conftest import GOLDEN, assert_flips_refused
 from PIL import Image
 
 from rowcast.archive import (
@@ -318,15 +318,8 @@ def test_single_byte_flips_in_golden_archives_are_caught_or_harmless(tmp_path: P
     entries = read_index(GOLDEN / name)[1]
     first, end = entries[0].offset, entries[-1].offset + entries[-1].length
     damaged = tmp_path / "damaged.rowcast"
-    for position in [*range(first), *range(end, len(original))]:
-        for mask in (0x01, 0xFF):
-            data = bytearray(original)
-            data[position] ^= mask
-            damaged.write_bytes(bytes(data))
-            with pytest.raises(ArchiveError) as caught:
-                read_index(damaged)
-            assert caught.value.args[0].startswith(f"{damaged}: ")
-            assert "\n" not in caught.value.args[0]
+    assert_flips_refused(original, [*range(first), *range(end, len(original))], (0x01, 0xFF),
+                         damaged, read_index)
     for position in range(first, end, 97):
         data = bytearray(original)
         data[position] ^= 0xFF

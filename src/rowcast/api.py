@@ -161,6 +161,17 @@ def _walk(root: Path) -> Iterator[tuple[Path, bool]]:
         dirs[:] = [d for d in dirs if not (here / d).is_symlink()]
 
 
+def check_destination(path: Path, force: bool) -> None:
+    """UsageError unless a new file may be written at `path`: not a directory, not an
+    existing file without `force`, in a folder that exists."""
+    if path.is_dir():
+        raise UsageError(f"{path}: is a directory")
+    if (path.exists() or path.is_symlink()) and not force:
+        raise UsageError(f"{path}: already exists (use --force to replace it)")
+    if not path.parent.is_dir():
+        raise UsageError(f"{path}: no such directory {path.parent}")
+
+
 def collect_inputs(inputs: Sequence[Path | str], exclude: Sequence[str] = ()) -> list[Found]:
     """Every file under the inputs, with what will become of it (`Found`), by content.
 
@@ -221,12 +232,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     read and coded in groups, so memory stays bounded however many there are.
     """
     dest = Path(dest)
-    if dest.is_dir():
-        raise UsageError(f"{dest}: is a directory")
-    if (dest.exists() or dest.is_symlink()) and not force:
-        raise UsageError(f"{dest}: already exists (use --force to replace it)")
-    if not dest.parent.is_dir():
-        raise UsageError(f"{dest}: no such directory {dest.parent}")
+    check_destination(dest, force)
     found = collect_inputs(inputs, exclude)
     for f in found:
         try:

@@ -406,12 +406,7 @@ def cost_map_command(
 
     The map sums to the model's cross-entropy for the image (needs matplotlib)."""
     with _guard(threads):
-        if output.is_dir():
-            raise UsageError(f"{output}: is a directory")
-        if (output.exists() or output.is_symlink()) and not force:
-            raise UsageError(f"{output}: already exists (use --force to replace it)")
-        if not output.parent.is_dir():
-            raise UsageError(f"{output}: no such directory {output.parent}")
+        api.check_destination(output, force)
         if importlib.util.find_spec("matplotlib") is None:
             raise UsageError(f"{output}: costmap needs matplotlib "
                              "(pip install 'rowcast[bench]')")

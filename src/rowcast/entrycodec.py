@@ -160,7 +160,7 @@ def png_of(picture: Picture) -> bytes:
         if fmt.palette:
             image.putpalette(picture.extra(PALETTE))
         else:
-            image = image.point(lambda v: 255 * v).convert("1")
+            image = image.point(lambda v: 255 * v).convert("1", dither=Image.Dither.NONE)
         buffer = io.BytesIO()
         image.save(buffer, "PNG", optimize=True)
         return buffer.getvalue()

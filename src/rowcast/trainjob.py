@@ -159,16 +159,6 @@ def command_line(job: Job) -> str:
     return shlex.join(words)
 
 
-def check_output(path: Path, force: bool) -> None:
-    """UsageError unless a model file may be written at `path`."""
-    if path.is_dir():
-        raise UsageError(f"{path}: is a directory")
-    if (path.exists() or path.is_symlink()) and not force:
-        raise UsageError(f"{path}: already exists (use --force to replace it)")
-    if not path.parent.is_dir():
-        raise UsageError(f"{path}: no such directory {path.parent}")
-
-
 def unusable(sniffed: imagefile.Sniffed) -> str | None:
     """Why an image file is not trained on (by its header), or None when it can be."""
     if sniffed.format in TRAINABLE:
@@ -344,7 +334,7 @@ def run(job: Job, log: Log = lambda line: None) -> Report:
     measure the held-out files; `log` receives `rowcast.train`'s lines and our own."""
     if not job.minutes > 0:
         raise UsageError(f"--minutes {job.minutes:g}: must be more than 0")
-    check_output(job.output, job.force)
+    api.check_destination(job.output, job.force)
     from rowcast.train import training_device
 
     try:
@@ -386,7 +376,7 @@ def run(job: Job, log: Log = lambda line: None) -> Report:
     }
     card, tensors = export(net, job.model_name, {"training": training})
     data = to_bytes(card, tensors)
-    check_output(job.output, job.force)  # it may have appeared while training ran
+    api.check_destination(job.output, job.force)  # it may have appeared while training ran
     measure.write_atomic(job.output, data)
     return Report(job.output, job.model_name, model_from_bytes(data, "").sha256.hex(),
                   start_label, job.start is None, summary["steps"] - before["steps"],
