@@ -502,7 +502,8 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
                  width: int, progress=None, trace=None, workers: int | None = None,
-                 methods: Sequence[str] | str = "model", layout: str = "streamed") -> np.ndarray:
+                 methods: Sequence[str] | str = "model", layout: str = "streamed",
+                 compiled: bool = True) -> np.ndarray:
     """Decode same-sized images together; returns (B, P, H, W) uint8.
 
     `methods` names each payload's method ("model", "tuned" or "adaptive"), or one for
@@ -514,14 +515,19 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     called with the number of images of a part after each of its rows; `trace`, if given,
     with (y, x, c, tables) for every subpixel (in this process), so tests can compare with
     the encoder's tables. numpy's BLAS runs single-threaded (`workers.run_split`).
+    `compiled`: the compiled loop (`rowdecoder`), else the reference decoder in Python;
+    tracing always runs the reference.
     """
     methods = [methods] * len(payloads) if isinstance(methods, str) else list(methods)
 
     def run(part: tuple[list[bytes], list[str]], report) -> np.ndarray:
-        return _decode(engine, *part, planes, height, width, report, trace, layout)
+        return _decode(engine, *part, planes, height, width, report, trace, layout,
+                       compiled and trace is None)
 
     cuts = shares(len(payloads), 1 if trace is not None else workers)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
+    if compiled and trace is None and len(parts) > 1:  # load the compiled loop once, in the
+        _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, layout, True)  # parent
     return np.concatenate(run_split(run, parts, progress))
 
 
@@ -531,12 +537,15 @@ def _models() -> entropy.Models:
     return entropy.Models(all_tables())
 
 
-def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout: str) -> tuple:
+def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout: str,
+                  opener=entropy.decoder) -> tuple:
     """(a range decoder over each payload's code, the batch's Tune or None), the tuning
-    read from each payload's header, or in the "streamed" layout decoded from its code."""
+    read from each payload's header, or in the "streamed" layout decoded from its code.
+    `opener(payload, trimmed=...)` makes a decoder: constriction's, or the compiled
+    loop's `rowdecoder.Stream`."""
     streamed = layout == "streamed"
     if all(m == "model" for m in methods):
-        return [entropy.decoder(p, trimmed=streamed) for p in payloads], None
+        return [opener(p, trimmed=streamed) for p in payloads], None
     offsets = np.zeros((len(payloads), fam.CHANNELS, len(tuning.BANDS) + 1), np.int64)
     couplings = np.zeros((len(payloads), 3), np.int64)
     gains = np.zeros((len(payloads), 3), np.int64)
@@ -554,7 +563,7 @@ def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout
             except ValueError as exc:
                 raise entropy.PayloadError(str(exc)) from None
             payload = payload[size:]
-        decoders.append(entropy.decoder(payload, trimmed=streamed))
+        decoders.append(opener(payload, trimmed=streamed))
         if method != "model" and streamed:
             symbols = {name: decoders[-1].decode(entropy.FAMILY, tuning.prior_tables(name)[rows])
                        for name, rows in tuning.field_rows(planes, method == "adaptive")}
@@ -563,8 +572,18 @@ def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
-            height: int, width: int, progress, trace, layout: str) -> np.ndarray:
+            height: int, width: int, progress, trace, layout: str,
+            compiled: bool) -> np.ndarray:
+    kernel = None
+    if compiled:
+        from rowcast import rowdecoder  # numba: loaded only when pixels are decoded
+
+        kernel = rowdecoder.kernel_of(engine)
     try:
+        if kernel is not None:
+            streams, tune = open_payloads(payloads, methods, planes, layout, rowdecoder.Stream)
+            return rowdecoder.decode_rows(engine, kernel, streams, tune, planes, height, width,
+                                          progress)
         return _decode_rows(engine, *open_payloads(payloads, methods, planes, layout), planes,
                             height, width, progress, trace)
     except AssertionError:  # constriction's word for data its models cannot have produced

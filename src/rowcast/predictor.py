@@ -186,6 +186,17 @@ class Engine:
         `above` is the last decoded row (B, 3, W) uint8, or None before row 0; `activity`
         (B, 3) is the row's `family.row_activity` (unused by models without it).
         """
+        acc = (self.row_features(state, above) @ self._w1_rows).astype(np.float64)
+        acc *= self._s1
+        acc += self._valid_terms(len(acc))
+        if self._w1_activity is not None:
+            acc += activity @ self._w1_activity
+        return acc
+
+    def row_features(self, state: list[np.ndarray], above: np.ndarray | None) -> np.ndarray:
+        """Advance the row stack by one row (`above`: the last decoded row (B, 3, W) uint8,
+        or None before row 0); returns its output for the new row, (W, B, width) in head
+        1's float type (exact integers)."""
         if above is None:
             a = np.zeros_like(state[0])
         else:
@@ -194,13 +205,7 @@ class Engine:
             pair = np.concatenate([state[i], a], 1)
             state[i] = a
             a = requantise(self.conv(pair, layer, pad_top=False), layer).astype(np.float32)
-        feats = a[:, 0].transpose(1, 0, 2).astype(self._w1_rows.dtype)  # (W, B, width)
-        acc = (feats @ self._w1_rows).astype(np.float64)
-        acc *= self._s1
-        acc += self._valid_terms(len(acc))
-        if self._w1_activity is not None:
-            acc += activity @ self._w1_activity
-        return acc
+        return a[:, 0].transpose(1, 0, 2).astype(self._w1_rows.dtype)
 
     def _valid_terms(self, width: int) -> np.ndarray:
         """(W, 1, hidden): head 1's folded bias and the valid planes of the pixels left of

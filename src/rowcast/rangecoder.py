@@ -1,0 +1,174 @@
+"""A numba range decoder, byte-compatible with constriction 0.5.0's range coder.
+
+rowcast encodes with constriction's `RangeEncoder` (32-bit words, 64-bit state) under
+`Categorical(table, perfect=False)` models (24-bit fixed point); this module decodes the
+same words without Python in the loop, so other njit code can decode symbol by symbol:
+
+    cdf = np.empty(257, np.uint32)
+    state = decoder_start(words)
+    quantise(table, cdf)                       # False: constriction cannot use the table
+    symbol = decode_symbol(state, words, cdf)  # -1: the data is invalid for this model
+
+How a table becomes a distribution (`quantise`), in the table's own float type (float32
+tables compute in float32, float64 ones in float64): with n symbols, `free = 2**24 - n`,
+`total` the left-to-right sum of the table and `scale = free / total` (one rounding), the
+left end of symbol i is `trunc(c_i * scale) + i`, where `c_i` is the left-to-right sum of
+the entries before i (rounded after each addition), the product is rounded once and its
+truncation saturates to 0..2**32 - 1; the sum with i wraps modulo 2**32. The last right end
+is 2**24. The `+ i` is what gives every symbol at least one of the 2**24 slots.
+
+The decoder's state is `lower`, `range`, `point` (64-bit) and the index of the next word;
+words past the end of the data read as zeros. See docs/FORMAT.md, "The range coder's
+model construction", for the whole algorithm and test vectors.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+PRECISION = 24  # bits of the model's fixed-point probabilities
+ONE = 1 << PRECISION  # the fixed-point total
+LOWER, RANGE, POINT, NEXT = 0, 1, 2, 3  # decoder state entries (uint64)
+INVALID = -1  # what decode_symbol returns where constriction raises
+
+_U32_MAX = 0xFFFFFFFF
+_SHIFT = np.uint64(32)  # one word
+_PRECISION = np.uint64(PRECISION)
+_ONE = np.uint64(ONE)
+_WORD_ONE = np.uint64(1 << 32)  # range below this: the decoder reads a word
+
+_F32_TINY = float(np.finfo(np.float32).tiny)  # the least positive normal numbers
+_F64_TINY = float(np.finfo(np.float64).tiny)
+
+_jit = numba.njit(cache=True, nogil=True)
+
+
+@_jit
+def quantise(counts: np.ndarray, cdf: np.ndarray) -> bool:
+    """Write into `cdf` (n + 1 entries, uint32 or int64) the 24-bit cumulative distribution
+    that constriction's `Categorical(counts, perfect=False)` builds from `counts` (n
+    entries, float32 or float64, computed in that type).
+
+    Returns False, and leaves `cdf` unspecified, where constriction refuses the table (n <
+    2 or n >= 2**24 - 1, a sum that is not a positive normal number), and where some
+    symbol other than the last gets no probability (`cdf[:n]` not strictly increasing:
+    only negative counts do that; constriction builds such models unchecked and codes
+    garbage with them). True otherwise. The last symbol may get no probability (cdf[n - 1]
+    == 2**24) when its count is negligible next to the sum and the float products round
+    up; so it does in constriction, which then cannot encode it, and neither decoder
+    ever decodes it.
+    """
+    n = counts.size
+    if n < 2 or n >= ONE - 1 or cdf.size != n + 1:
+        return False
+    total = counts[0]
+    for i in range(1, n):  # constriction sums left to right, rounding each addition
+        total += counts[i]
+    tiny = _F32_TINY if counts.itemsize == 4 else _F64_TINY
+    if not (total >= tiny and np.isfinite(total)):  # a positive normal number
+        return False
+    scale = counts.dtype.type(ONE - n) / total  # exact free weight, one rounding
+    cumulative = counts[0] - counts[0]  # zero of the table's type (total is finite)
+    ok = True
+    previous = -1
+    for i in range(n):
+        product = cumulative * scale
+        if not (product > 0):  # saturating float-to-int cast: NaN and negatives to 0
+            whole = 0
+        elif product >= 4294967296.0:
+            whole = _U32_MAX
+        else:
+            whole = np.int64(product)  # truncation
+        left = (whole + i) & _U32_MAX  # u32 addition wraps
+        cdf[i] = left
+        ok = ok and left > previous
+        previous = left
+        cumulative += counts[i]
+    cdf[n] = ONE
+    return ok
+
+
+@_jit
+def decoder_start(words: np.ndarray) -> np.ndarray:
+    """A decoder state (uint64 [lower, range, point, next word]) at the start of `words`
+    (uint32): `point` holds the first two words, zeros standing in for missing ones."""
+    state = np.empty(4, np.uint64)
+    point = np.uint64(0)
+    for i in range(2):
+        point <<= _SHIFT
+        if i < words.size:
+            point |= np.uint64(words[i])
+    state[LOWER] = np.uint64(0)
+    state[RANGE] = np.uint64(0xFFFFFFFFFFFFFFFF)
+    state[POINT] = point
+    state[NEXT] = np.uint64(2)
+    return state
+
+
+@_jit
+def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray) -> int:
+    """Decode one symbol with the model `cdf` (from `quantise`, n + 1 entries), advancing
+    `state` (from `decoder_start`) over `words`; past their end it reads zero words.
+
+    Returns the symbol (0..n-1), or INVALID (-1), with `state` unchanged, where
+    constriction raises: the point lies beyond what the model can code (invalid data);
+    also for a hand-made `cdf` that does not start at 0 or has fewer than 2 entries, and
+    a hand-made `state` whose range is below 2**24.
+    """
+    lower = state[LOWER]
+    range_ = state[RANGE]
+    point = state[POINT]
+    scale = range_ >> _PRECISION
+    if scale == 0 or cdf.size < 2:  # never from decoder_start and quantise
+        return INVALID
+    quantile = (point - lower) // scale  # wrapping subtraction
+    if quantile >= _ONE:
+        return INVALID
+    q = np.int64(quantile)
+    low = 0  # the last symbol whose left end is <= q: cdf[low] <= q < cdf[high]
+    high = cdf.size - 1
+    while high - low > 1:
+        mid = (low + high) >> 1
+        if cdf[mid] <= q:
+            low = mid
+        else:
+            high = mid
+    left = np.int64(cdf[low])
+    if left > q:
+        return INVALID
+    width = np.int64(cdf[low + 1]) - left  # > 0: the search keeps cdf[low + 1] > q
+    lower += scale * np.uint64(left)
+    range_ = scale * np.uint64(width)
+    if range_ < _WORD_ONE:
+        lower <<= _SHIFT
+        range_ <<= _SHIFT
+        point <<= _SHIFT
+        at = np.int64(state[NEXT])
+        if at < words.size:
+            point |= np.uint64(words[at])
+        state[NEXT] = np.uint64(at + 1)
+    state[LOWER] = lower
+    state[RANGE] = range_
+    state[POINT] = point
+    return low
+
+
+@_jit
+def decode_counts(state: np.ndarray, words: np.ndarray, counts: np.ndarray,
+                  scratch_cdf: np.ndarray) -> int:
+    """Decode one symbol under the table `counts` (n entries), building its model in
+    `scratch_cdf` (n + 1 entries); INVALID (-1) where the table or the data is invalid."""
+    if not quantise(counts, scratch_cdf):
+        return INVALID
+    return decode_symbol(state, words, scratch_cdf)
+
+
+def payload_words(payload: bytes, trimmed: bool = True) -> np.ndarray:
+    """The uint32 words of a payload written by `rowcast.entropy.finish`: big-endian with
+    its zero bytes trimmed (`trimmed`, padded back here) or whole little-endian words."""
+    if trimmed:
+        payload = payload + bytes(-len(payload) % 4)
+    elif len(payload) % 4:
+        raise ValueError("payload length is not a whole number of 32-bit words")
+    return np.frombuffer(payload, ">u4" if trimmed else "<u4").astype(np.uint32)
