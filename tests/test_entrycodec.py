@@ -150,3 +150,75 @@ def test_truncated_coded_payloads_raise_coding_error(tiny_engine, cut):
 def test_a_literal_payload_of_the_wrong_length_is_refused():
     (result,) = decode_values(None, [Wanted(BY_NAME["RGB"], 4, 4, "literal", bytes(47))])
     assert isinstance(result, CodingError)
+
+
+def pieces_of(payload: bytes) -> list[str]:
+    """The piece methods of a coded payload's groups, in order (tiles not opened)."""
+    reader, names = entrycodec._Reader(payload), []
+    while reader.pos < len(payload):
+        for _ in range(reader.number()):
+            names.append(reader.piece()[0])
+    return names
+
+
+@pytest.mark.parametrize(("name", "h", "w"), [("RGB", 20, 300), ("RGBA", 270, 12),
+                                              ("L16", 257, 257), ("P", 30, 513)])
+def test_a_picture_larger_than_a_thumbnail_is_coded_in_tiles_and_round_trips(tiny_engine,
+                                                                             name, h, w):
+    """A side over TILE: every predicted plane set becomes a tiles piece (edge tiles
+    smaller, down to a 1 x 1 corner), and the picture comes back exactly."""
+    picture = picture_of(name, h, w, seed=h + w)
+    (coded,), (values,) = round_trip(tiny_engine, [picture])
+    assert coded.method == "coded" and "tiles" in pieces_of(coded.payload)
+    assert np.array_equal(values, picture.values)
+
+
+def test_thumbnails_are_not_tiled(tiny_engine):
+    """A side of TILE or less: one piece for the plane set, as before tiles existed."""
+    noise = np.random.default_rng(4).integers(0, 64, (3, 256, 40), dtype=np.uint8)
+    (coded,), _ = round_trip(tiny_engine, [Picture(noise, "RGB")])
+    assert coded.method == "coded" and pieces_of(coded.payload) in (["zlib"], ["adaptive"])
+
+
+def test_tiles_of_different_pictures_decode_together_in_picture_rows(tiny_engine):
+    """Same-sized tiles of several pictures share batches; progress, reported in picture
+    rows, adds up to the pictures' heights however their planes are split."""
+    pictures = [picture_of("RGBA", 20, 300, seed=1), picture_of("RGB", 20, 260, seed=2),
+                picture_of("L", 9, 9, seed=3)]
+    coded = encode_pictures(tiny_engine, pictures)
+    wanted = [Wanted(p.pixel_format, p.width, p.height, c.method, c.payload)
+              for p, c in zip(pictures, coded, strict=True)]
+    rows = []
+    decoded = decode_values(tiny_engine, wanted, progress=rows.append)
+    for got, picture in zip(decoded, pictures, strict=True):
+        assert np.array_equal(got, picture.values)
+    coded_rows = sum(p.height for p, c in zip(pictures, coded, strict=True)
+                     if c.method == "coded")
+    assert sum(rows) == pytest.approx(coded_rows)
+
+
+def tiles_payload(side: int, tiles: list[bytes], trailing: bytes = b"") -> bytes:
+    """A one-group coded payload whose piece is a tiles piece of the given tile pieces."""
+    body = entrycodec.varint.pack(side) + b"".join(tiles) + trailing
+    return b"\x01" + entrycodec._piece("tiles", body)
+
+
+@pytest.mark.parametrize(("side", "count", "trailing", "reason"), [
+    (8, 24, b"", "side"), (300, 1, b"", "side"), (256, 2, b"\x00", "trailing"),
+    (256, 1, b"", "truncated"), (16, 1000, b"", "bytes")])
+def test_a_malformed_tiles_piece_is_refused(side, count, trailing, reason):
+    """Tiles smaller than 16, one tile for the whole plane, bytes after the last tile, too
+    few tiles, or a tile count the bytes cannot hold: a CodingError, nothing allocated."""
+    h, w = 20, 300
+    tile = entrycodec._piece("literal", bytes(20 * 16))
+    payload = tiles_payload(side, [tile] * min(count, 2) if reason != "bytes" else [],
+                            trailing)
+    (result,) = decode_values(None, [Wanted(BY_NAME["L"], w, h, "coded", payload)])
+    assert isinstance(result, CodingError)
+
+
+def test_a_tiles_piece_inside_a_tiles_piece_is_refused():
+    inner = entrycodec._piece("tiles", entrycodec.varint.pack(16))
+    payload = tiles_payload(256, [inner, inner])
+    (result,) = decode_values(None, [Wanted(BY_NAME["L"], 300, 20, "coded", payload)])
+    assert isinstance(result, CodingError) and "inside" in str(result)

@@ -8,9 +8,12 @@ bits. Each predictor piece is kept as the predictor's code or, when shorter, as 
 raw bytes, so no piece costs more than its raw size plus a few bytes.
 
 The payload of method "coded" (docs/FORMAT.md) is, for each group, the number of its
-pieces, then each piece: a method byte (`PIECES`), its length and its bytes. The whole
-picture may instead be kept as a PNG of its values (method "png") or raw ("literal"),
-whichever of the three is shortest.
+pieces, then each piece: a method byte (`PIECES`), its length and its bytes. A predicted
+plane set larger than a thumbnail (a side over `TILE`) is a "tiles" piece instead: the
+tile side, then one piece for each TILE x TILE tile in raster order, so that tiles decode
+independently, together with same-sized tiles of other pictures, on every worker, in
+bounded memory. The whole picture may instead be kept as a PNG of its values (method
+"png") or raw ("literal"), whichever of the three is shortest.
 """
 
 from __future__ import annotations
@@ -31,10 +34,12 @@ from rowcast.picture import PALETTE, Picture, interleaved
 from rowcast.pixelformats import PixelFormat
 from rowcast.predictor import Engine
 
-PIECES: dict[str, int] = {"literal": 0, "model": 1, "tuned": 2, "adaptive": 3, "zlib": 4}
+PIECES: dict[str, int] = {"literal": 0, "model": 1, "tuned": 2, "adaptive": 3, "zlib": 4,
+                          "tiles": 5}
 _PIECE_NAMES = {code: name for name, code in PIECES.items()}
 PREDICTED = ("model", "tuned", "adaptive")  # pieces coded by the predictor
 ONE_BIT_HIGH = 255  # a 1-bit value of 1 as the predictor sees it
+TILE = 256  # predicted planes with a side over this are coded in tiles of this side
 
 
 class CodingError(ValueError):
@@ -101,16 +106,17 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
     """The shortest payload of each picture (`Encoded`); same-sized predictor pieces of
     all the pictures are coded together. `engine` None codes without the predictor."""
     groups = [_groups(p) for p in pictures]
-    buckets: dict[tuple, list[tuple[int, int, int]]] = defaultdict(list)
+    buckets: dict[tuple, list[tuple[int, int, int, int]]] = defaultdict(list)
     for i, picture_groups in enumerate(groups):
         for g, pieces in enumerate(picture_groups):
             for k, (what, data) in enumerate(pieces):
                 if what == "predict":
-                    buckets[data.shape].append((i, g, k))
-    coded: dict[tuple[int, int, int], codec.Coded] = {}
+                    for t, tile in enumerate(tiles(data)):
+                        buckets[tile.shape].append((i, g, k, t))
+    coded: dict[tuple[int, int, int, int], codec.Coded] = {}
     if engine is not None:
         for members in buckets.values():
-            images = [groups[i][g][k][1] for i, g, k in members]
+            images = [tiles(groups[i][g][k][1])[t] for i, g, k, t in members]
             coded.update(zip(members, codec.encode_batch(engine, images, "adaptive",
                                                          workers=workers), strict=True))
     results = []
@@ -119,19 +125,47 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
         for g, pieces in enumerate(groups[i]):
             body += varint.pack(len(pieces))
             for k, (what, data) in enumerate(pieces):
-                raw = data.tobytes() if what == "predict" else data
-                method, chosen = _plain(raw)
-                c = coded.get((i, g, k))
-                if c is not None and len(c.payload) < len(chosen):
-                    method, chosen = c.method, c.payload
-                    bits += c.cross_entropy + c.tuning_bits
-                else:
+                if what != "predict":
+                    method, chosen = _plain(data)
                     bits += 8 * len(chosen)
-                body += _piece(method, chosen)
-                if what == "predict":
-                    parts.append(method)
+                    body += _piece(method, chosen)
+                    continue
+                chosen = [_best(tile, coded.get((i, g, k, t)))
+                          for t, tile in enumerate(tiles(data))]
+                bits += sum(b for _, _, b in chosen)
+                parts.append(_summary([m for m, _, _ in chosen]))
+                if len(chosen) == 1:
+                    body += _piece(*chosen[0][:2])
+                else:
+                    body += _piece("tiles", varint.pack(TILE) + b"".join(
+                        _piece(m, d) for m, d, _ in chosen))
         results.append(_shortest(picture, Encoded("coded", bytes(body), tuple(parts), bits)))
     return results
+
+
+def tiles(planes: np.ndarray) -> list[np.ndarray]:
+    """A predicted plane set (P, H, W) as its TILE x TILE tiles in raster order (the edge
+    ones smaller), or itself alone when no side is over TILE."""
+    h, w = planes.shape[1:]
+    if h <= TILE and w <= TILE:
+        return [planes]
+    return [np.ascontiguousarray(planes[:, y : y + TILE, x : x + TILE])
+            for y in range(0, h, TILE) for x in range(0, w, TILE)]
+
+
+def _best(planes: np.ndarray, coded: codec.Coded | None) -> tuple[str, bytes, float]:
+    """(piece method, bytes, bits accounted) of a predicted plane set: the shortest of its
+    predictor code, zlib and literal."""
+    method, chosen = _plain(planes.tobytes())
+    if coded is not None and len(coded.payload) < len(chosen):
+        return coded.method, coded.payload, coded.cross_entropy + coded.tuning_bits
+    return method, chosen, 8.0 * len(chosen)
+
+
+def _summary(methods: list[str]) -> str:
+    """What `rowcast list` shows for a predicted piece: its method, or for tiles the
+    richest predictor method among them (else the plain method of the first)."""
+    return next((m for m in reversed(PREDICTED) if m in methods), methods[0])
 
 
 def _shortest(picture: Picture, coded: Encoded) -> Encoded:
@@ -221,7 +255,7 @@ class _Reader:
         code = self.data[self.pos]
         self.pos += 1
         if code not in _PIECE_NAMES:
-            raise CodingError(f"unknown piece method {code}")
+            raise CodingError(f"unknown piece method {code} (from a newer rowcast?)")
         length = self.number()
         if length > len(self.data) - self.pos:
             raise CodingError("piece runs past the payload")
@@ -275,19 +309,87 @@ def _parse(want: Wanted, index: int, slots: list[_Slot]) -> list[list]:
             if not predict:
                 pieces.append(_plain_bytes(method, data, deep.MAX_PARAMS if k == 0
                                            else 2 * len(group) * h * w))
-            elif method in PREDICTED:
-                slot = _Slot(index, shape, method, data)
-                slots.append(slot)
-                pieces.append(slot)
+            elif method == "tiles":
+                pieces.append(_parse_tiles(data, shape, index, slots))
             else:
-                raw = _plain_bytes(method, data, int(np.prod(shape)))
-                if len(raw) != int(np.prod(shape)):
-                    raise CodingError("plane piece of the wrong length")
-                pieces.append(np.frombuffer(raw, np.uint8).reshape(shape))
+                pieces.append(_predicted(method, data, shape, index, slots))
         groups.append(pieces)
     if reader.pos != len(want.payload):
         raise CodingError("trailing bytes in coded payload")
     return groups
+
+
+def _predicted(method: str, data: bytes, shape: tuple[int, int, int], index: int,
+               slots: list[_Slot]) -> _Slot | np.ndarray:
+    """A predicted plane set's piece: a `_Slot` to decode, or its plain values."""
+    if method in PREDICTED:
+        slot = _Slot(index, shape, method, data)
+        slots.append(slot)
+        return slot
+    if method == "tiles":
+        raise CodingError("a tiles piece inside a tiles piece")
+    raw = _plain_bytes(method, data, int(np.prod(shape)))
+    if len(raw) != int(np.prod(shape)):
+        raise CodingError("plane piece of the wrong length")
+    return np.frombuffer(raw, np.uint8).reshape(shape)
+
+
+@dataclass
+class _Tiled:
+    """A predicted plane set coded in tiles: its shape, the tile side, each tile's piece."""
+
+    shape: tuple[int, int, int]
+    side: int
+    tiles: list
+
+
+MIN_TILE = 16  # the least tile side a reader accepts
+
+
+def _parse_tiles(data: bytes, shape: tuple[int, int, int], index: int,
+                 slots: list[_Slot]) -> _Tiled:
+    """A tiles piece: the side, then a piece per tile in raster order. The tile count is
+    checked against the bytes (each tile's piece takes at least two) before any list of
+    that size exists."""
+    reader = _Reader(data)
+    side = reader.number()
+    planes, h, w = shape
+    if side < MIN_TILE or (h <= side and w <= side):
+        raise CodingError(f"tiles of side {side} for a plane of {w} x {h}")
+    count = -(-h // side) * -(-w // side)
+    if 2 * count > len(data):
+        raise CodingError(f"a tiles piece of {len(data)} bytes for {count} tiles")
+    tiles = []
+    for y in range(0, h, side):
+        for x in range(0, w, side):
+            method, piece = reader.piece()
+            tile = (planes, min(side, h - y), min(side, w - x))
+            tiles.append(_predicted(method, piece, tile, index, slots))
+    if reader.pos != len(data):
+        raise CodingError("trailing bytes in tiles piece")
+    return _Tiled(shape, side, tiles)
+
+
+def _slots_of(piece) -> list[_Slot]:
+    """The slots a parsed piece waits for."""
+    if isinstance(piece, _Slot):
+        return [piece]
+    return [t for t in piece.tiles if isinstance(t, _Slot)] if isinstance(piece, _Tiled) else []
+
+
+def _values_of(piece, planes: dict[int, np.ndarray]):
+    """A parsed piece's values once its slots are decoded."""
+    if isinstance(piece, _Slot):
+        return planes[id(piece)]
+    if not isinstance(piece, _Tiled):
+        return piece
+    out = np.empty(piece.shape, np.uint8)
+    side, width = piece.side, piece.shape[2]
+    per_row = -(-width // side)
+    for t, tile in enumerate(piece.tiles):
+        y, x = t // per_row * side, t % per_row * side
+        out[:, y : y + side, x : x + side] = _values_of(tile, planes)
+    return out
 
 
 def _assemble(want: Wanted, groups: list[list], planes: dict[int, np.ndarray]) -> np.ndarray:
@@ -295,7 +397,7 @@ def _assemble(want: Wanted, groups: list[list], planes: dict[int, np.ndarray]) -
     fmt = want.format
     values = np.zeros((fmt.planes, want.height, want.width), fmt.dtype)
     for group, pieces in zip(fmt.groups, groups, strict=True):
-        got = [planes[id(p)] if isinstance(p, _Slot) else p for p in pieces]
+        got = [_values_of(p, planes) for p in pieces]
         if fmt.bits == 16:
             literal = np.frombuffer(got[-1], np.uint8) if got[-1] else None
             part = deep.join(got[0], got[1:-1], literal, (len(group), want.height, want.width))
@@ -338,7 +440,7 @@ def decode_values(engine: Engine | None, wanted: Sequence[Wanted], batch: int = 
             results[i] = exc
     planes = _decode_slots(engine, wanted, slots, batch, progress, workers)
     for i, groups in parsed.items():
-        mine = [s for g in groups for s in g if isinstance(s, _Slot)]
+        mine = [s for g in groups for p in g for s in _slots_of(p)]
         failed = next((planes[id(s)] for s in mine if isinstance(planes[id(s)], CodingError)),
                       None)
         if failed is not None:
@@ -362,14 +464,18 @@ def _decode_slots(engine: Engine | None, wanted: Sequence[Wanted], slots: list[_
     if slots and engine is None:
         raise ValueError("predictor pieces need an engine")
     buckets: dict[tuple, list[_Slot]] = defaultdict(list)
+    per_item: dict[int, int] = defaultdict(int)
     for s in slots:
         buckets[(s.shape, wanted[s.item].layout)].append(s)
+        per_item[s.item] += 1
     for ((planes, h, w), layout), members in buckets.items():
         for start in range(0, len(members), batch):
             part = members[start : start + batch]
             try:
                 decoded = codec.decode_batch(engine, [s.data for s in part], planes, h, w,
-                                             progress=progress, workers=workers,
+                                             progress=_rows_of(progress, part, wanted,
+                                                               per_item),
+                                             workers=workers,
                                              methods=[s.method for s in part], layout=layout)
                 out.update((id(s), d) for s, d in zip(part, decoded, strict=True))
             except (PayloadError, ValueError, RuntimeError):
@@ -381,6 +487,17 @@ def _decode_slots(engine: Engine | None, wanted: Sequence[Wanted], slots: list[_
                     except (PayloadError, ValueError, RuntimeError) as exc:
                         out[id(s)] = CodingError(f"predictor piece does not decode ({exc})")
     return out
+
+
+def _rows_of(progress, part: list[_Slot], wanted: Sequence[Wanted],
+             per_item: dict[int, int]):
+    """`progress` in picture rows for a batch of slots that reports slot rows: a slot of h
+    rows, one of k of a picture of height H, counts H / (k h) a row, so each picture adds
+    its height once all its slots (tiles, plane groups) are decoded."""
+    if progress is None:
+        return None
+    rows = sum(wanted[s.item].height / (per_item[s.item] * s.shape[1]) for s in part)
+    return lambda n: progress(n * rows / len(part))
 
 
 def needs_engine(methods: Sequence[str], parts: Sequence[Sequence[str]]) -> bool:
