@@ -240,8 +240,8 @@ def test_an_unknown_even_header_field_is_ignored(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize(("fields", "reason"), [
-    (tagged(1, MODEL.sha256) + tagged(2, b"m") + tagged(5, b"model"),
-     "header field 5 needs a newer rowcast"),
+    (tagged(1, MODEL.sha256) + tagged(2, b"m") + tagged(7, b"model"),
+     "header field 7 needs a newer rowcast"),
     (tagged(2, b"m") + tagged(1, MODEL.sha256), "out of order"),
     (tagged(1, MODEL.sha256), "lacks the model's name or SHA-256"),
     (tagged(2, b"m"), "lacks the model's name or SHA-256"),
@@ -691,6 +691,21 @@ def test_an_embedded_model_is_header_field_3_and_read_back_whole(tmp_path: Path)
     ident, (entry,) = read_index(dest)
     assert ident == ModelIdentity(MODEL.name, MODEL.sha256, model_file)
     assert ident.embedded == model_file and entry.path == "a"
+
+
+def test_a_packed_model_is_header_field_5_and_never_beside_a_model_file(tmp_path: Path) -> None:
+    """FORMAT.md: tag 5 (odd: a reader that does not know it refuses the archive) holds the
+    packed model, opaque to the container; a header with both forms is refused."""
+    packed = b"packed model bytes"
+    dest = tmp_path / "packed.rowcast"
+    write_archive(dest, ModelIdentity(MODEL.name, MODEL.sha256, packed, packed=True),
+                  [image("a")])
+    fields = tagged(1, MODEL.sha256) + tagged(2, MODEL.name.encode())
+    assert dest.read_bytes().startswith(header(fields + tagged(5, packed)))
+    ident, _ = read_index(dest)
+    assert ident == ModelIdentity(MODEL.name, MODEL.sha256, packed, packed=True)
+    refused(tmp_path, build([], head=header(fields + tagged(3, b"file") + tagged(5, b"pack"))),
+            "both as a file and packed")
 
 
 @pytest.mark.parametrize(("length", "reason"), [

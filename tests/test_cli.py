@@ -834,36 +834,42 @@ def test_decompress_with_another_model_names_the_archives_model(
 
 
 def test_an_embedded_model_decodes_with_no_model_file_present(made: Made, tmp_path: Path) -> None:
-    """--embed-model stores the model file in the archive: after the file is deleted, list,
-    verify and decompress need no --model; the archive is larger by the model's bytes, which
-    list and the summary show."""
+    """--embed-model stores the model, packed, in the archive: after the file is deleted,
+    list, verify and decompress need no --model; the archive is larger by the packed
+    model's bytes (fewer than the model file's), which list and the summary show."""
     own = tmp_path / "own.safetensors"
     shutil.copy(TINY, own)
     plain, embedded = tmp_path / "plain.rca", tmp_path / "embedded.rca"
     assert run("compress", made.originals, "-o", plain, "--model", own).exit_code == 0
     result = run("compress", made.originals, "-o", embedded, "--model", own, "--embed-model")
     assert result.exit_code == 0, result.stderr
-    assert f"(embedded: {TINY.stat().st_size} bytes)" in result.stdout
+    packed = len(rowcast.modelpack.smallest(rowcast.api.load_model(own)))
+    assert packed < TINY.stat().st_size
+    assert f"(embedded: {packed} bytes)" in result.stdout
     own.unlink()
 
-    assert 0 < embedded.stat().st_size - plain.stat().st_size - TINY.stat().st_size < 8
-    assert f"(embedded: {TINY.stat().st_size} bytes)" in run("list", embedded).stdout
+    assert 0 < embedded.stat().st_size - plain.stat().st_size - packed < 8
+    assert f"(embedded: {packed} bytes)" in run("list", embedded).stdout
     assert run("verify", embedded, "--against", made.originals).exit_code == 0
     out = tmp_path / "out"
     assert run("decompress", embedded, "-o", out).exit_code == 0
     assert files_under(out) == set(SOURCES)
 
 
-@pytest.mark.parametrize("embedded", ["junk", "another model"])
+@pytest.mark.parametrize("embedded", ["junk", "junk packed", "another model",
+                                      "another model packed"])
 def test_an_embedded_model_that_is_not_the_recorded_one_is_refused(made: Made, tmp_path: Path,
                                                                     embedded: str) -> None:
-    """Bytes that are no model, or a model of another identity, in the model field: the
-    archive is refused as damaged (exit 1), naming it; nothing is decoded with them."""
+    """Bytes that are no model, or a model of another identity, as a model file or packed:
+    the archive is refused as damaged (exit 1), naming it; nothing is decoded with them."""
     ident, entries = rowcast.read_index(made.archive)
-    data = b"junk" if embedded == "junk" else rowcast.api.load_model().file
+    packed = embedded.endswith("packed")
+    other = rowcast.api.load_model()
+    data = (b"junk" if embedded.startswith("junk")
+            else rowcast.modelpack.smallest(other) if packed else other.file)
     damaged = tmp_path / "damaged.rca"
     images = [e for e in entries if e.kind == "image"][:1]
-    rowcast.archive.write_archive(damaged, replace(ident, embedded=data), [
+    rowcast.archive.write_archive(damaged, replace(ident, embedded=data, packed=packed), [
         rowcast.archive.Entry(e.path, e.kind, e.format, e.width, e.height, e.method,
                               e.checksum, rowcast.archive.read_payload(made.archive, e),
                               rowcast.archive.read_extras(made.archive, e), parts=e.parts)
@@ -872,6 +878,7 @@ def test_an_embedded_model_that_is_not_the_recorded_one_is_refused(made: Made, t
     result = run("verify", damaged)
     line = error_line(result, 1, damaged)
     assert ("not a rowcast model file" in line if embedded == "junk"
+            else "not a packed rowcast model" in line if embedded == "junk packed"
             else "the embedded model is not the model the archive records" in line)
 
 

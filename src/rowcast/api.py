@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from rowcast import archive, entrycodec, imagefile
+from rowcast import archive, entrycodec, imagefile, modelpack
 from rowcast.archive import ArchiveError, Entry, IndexEntry, ModelIdentity
 from rowcast.entrycodec import CodingError, Wanted
 from rowcast.errors import DataError, UsageError
@@ -123,8 +123,11 @@ def _model(path: Path | str | None) -> IntModel:
 
 
 def identity(model: IntModel, embed: bool = False) -> ModelIdentity:
-    """The archive's record of a model, with the model file itself when `embed`."""
-    return ModelIdentity(model.name, model.sha256, model.file if embed else b"")
+    """The archive's record of a model, with the model itself, packed (`modelpack`), when
+    `embed`."""
+    if not embed:
+        return ModelIdentity(model.name, model.sha256)
+    return ModelIdentity(model.name, model.sha256, modelpack.smallest(model), packed=True)
 
 
 def _archive_model(src: Path, ident: ModelIdentity, model: Path | str | None) -> IntModel:
@@ -135,7 +138,9 @@ def _archive_model(src: Path, ident: ModelIdentity, model: Path | str | None) ->
         net = _model(model)
     elif ident.embedded:
         try:
-            net = model_from_bytes(ident.embedded, f"{src}: embedded model")
+            origin = f"{src}: embedded model"
+            net = (modelpack.unpack(ident.embedded, origin) if ident.packed
+                   else model_from_bytes(ident.embedded, origin))
         except ModelError as exc:
             raise DataError(str(exc)) from None
         if net.sha256 != ident.sha256:

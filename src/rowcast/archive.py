@@ -42,7 +42,7 @@ KIND_METHODS: dict[str, frozenset[str]] = {
 PART_METHODS = frozenset({"literal", "model", "tuned", "adaptive", "zlib"})
 
 # Header field tags and record extension tags: odd = a reader must understand it.
-MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG = 1, 2, 3
+MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG, MODEL_PACKED_TAG = 1, 2, 3, 5
 RESTORE_AS_TAG, REASON_TAG, CARRIES_TAG, PARTS_TAG = 1, 2, 4, 6
 
 TRAILER = struct.Struct("<QQI4s")  # index offset, index length, index CRC32, end mark
@@ -86,11 +86,13 @@ class Malformed(Exception):
 @dataclass(frozen=True)
 class ModelIdentity:
     """Which model coded an archive: its name and the SHA-256 of its canonical bytes, and
-    the model file itself when the archive carries it (`embedded`, opaque to the container)."""
+    the model itself when the archive carries it (`embedded`, opaque to the container): a
+    model file, or with `packed` the model in `rowcast.modelpack`'s form."""
 
     name: str
     sha256: bytes
     embedded: bytes = field(default=b"", repr=False)
+    packed: bool = False
 
 
 @dataclass(frozen=True)
@@ -305,7 +307,8 @@ def _encode_header(model: ModelIdentity) -> bytes:
         raise Malformed(f"model SHA-256 is {len(model.sha256)} bytes, expected {DIGEST_BYTES}")
     if len(model.embedded) > MAX_MODEL_BYTES:
         raise Malformed(f"embedded model of {len(model.embedded)} bytes, over {MAX_MODEL_BYTES}")
-    embedded = _field(MODEL_FILE_TAG, model.embedded) if model.embedded else b""
+    tag = MODEL_PACKED_TAG if model.packed else MODEL_FILE_TAG
+    embedded = _field(tag, model.embedded) if model.embedded else b""
     head = (PREFIX.pack(MAGIC, VERSION)
             + _field(MODEL_SHA256_TAG, bytes(model.sha256)) + _field(MODEL_NAME_TAG, name)
             + embedded + b"\0")
@@ -590,9 +593,9 @@ def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int]:
             raise Malformed(f"model SHA-256 field is {length} bytes")
         if tag == MODEL_NAME_TAG and length > MAX_NAME_BYTES:
             raise Malformed(f"model name field is {length} bytes")
-        if tag == MODEL_FILE_TAG and not 0 < length <= MAX_MODEL_BYTES:
+        if tag in (MODEL_FILE_TAG, MODEL_PACKED_TAG) and not 0 < length <= MAX_MODEL_BYTES:
             raise Malformed(f"embedded model field is {length} bytes")
-        if tag in (MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG):
+        if tag in (MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG, MODEL_PACKED_TAG):
             values[tag] = reader.take(length)
         else:
             reader.skip(length)
@@ -606,8 +609,12 @@ def _read_header(f: BinaryIO, size: int) -> tuple[ModelIdentity, int]:
         raise Malformed(f"header field {unknown_odd[0]} needs a newer rowcast")
     if MODEL_SHA256_TAG not in values or MODEL_NAME_TAG not in values:
         raise Malformed("header lacks the model's name or SHA-256")
+    if MODEL_FILE_TAG in values and MODEL_PACKED_TAG in values:
+        raise Malformed("header holds the model both as a file and packed")
     name = _check_text(decode_utf8(values[MODEL_NAME_TAG], "model name"), "model name")
-    return ModelIdentity(name, values[MODEL_SHA256_TAG], values.get(MODEL_FILE_TAG, b"")), end
+    packed = MODEL_PACKED_TAG in values
+    embedded = values.get(MODEL_PACKED_TAG if packed else MODEL_FILE_TAG, b"")
+    return ModelIdentity(name, values[MODEL_SHA256_TAG], embedded, packed), end
 
 
 def read_trailer(f: BinaryIO, size: int, header_end: int) -> tuple[int, int, int]:
