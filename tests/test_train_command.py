@@ -23,6 +23,7 @@ import rowcast
 from rowcast import measure, trainjob
 from rowcast.cli import app
 from rowcast.errors import UsageError
+from rowcast.heldout import RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.imagefile import read_picture
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
@@ -200,3 +201,53 @@ def test_the_live_line_follows_the_training_log():
     state.update("measuring the held-out files with both models", 131.0)
     assert state.line(131.0) == ("measuring the held-out files with both models, step 300, "
                                  "train 3.800 bpsp, held out 4.100 bpsp, 0:00 left")
+
+
+# ---- compress --adapt ---------------------------------------------------------------------
+
+def test_adapting_that_does_not_pay_leaves_the_plain_archive_byte_for_byte(tmp_path):
+    """A few seconds of fine-tuning cannot pay for its packed model on a small folder: the
+    archive is the one plain compress writes, to the byte, and the summary says what the
+    adapted model would have cost (payloads + model against the starting payloads)."""
+    folder = tmp_path / "in"
+    make_folder(folder, 6, others=False)
+    plain, adapted = tmp_path / "plain.rca", tmp_path / "adapted.rca"
+    assert run("compress", folder, "-o", plain).exit_code == 0
+    result = run("compress", folder, "-o", adapted, "--adapt", "--minutes", MINUTES, "--json")
+    assert result.exit_code == 0, result.stderr
+    a = json.loads(result.stdout)["adaptation"]
+    assert a["kept"] is False and a["from"] == "default"
+    assert a["saved_bytes"] == a["start_payload_bytes"] - a["payload_bytes"] - a["model_bytes"]
+    assert a["saved_bytes"] <= 0 < a["model_bytes"]
+    assert adapted.read_bytes() == plain.read_bytes()
+
+
+def test_an_adapted_model_that_pays_is_embedded_and_decodes_with_no_model_file(
+        tmp_path, monkeypatch):
+    """Starting from the weak tiny model, an "adaptation" that yields the bundled default
+    (stubbed: the training itself is the test above) pays for itself many times: it is kept,
+    packed into the archive, counted in its size, and list, verify and decompress need no
+    model file."""
+    folder = tmp_path / "in"
+    sources = write_pngs(thumbnails(RGB_PHOTOS, "RGB", 64), folder, "RGB")
+    own = tmp_path / "own.safetensors"
+    own.write_bytes(TINY.read_bytes())
+    monkeypatch.setattr(trainjob, "adapt", lambda *args, **kw: load_model())
+    plain, adapted = tmp_path / "plain.rca", tmp_path / "adapted.rca"
+    assert run("compress", folder, "-o", plain, "--model", own).exit_code == 0
+    result = run("compress", folder, "-o", adapted, "--model", own, "--adapt")
+    assert result.exit_code == 0, result.stderr
+    assert "bytes saved" in result.stdout
+    own.unlink()
+    assert adapted.stat().st_size < plain.stat().st_size
+    ident, _ = rowcast.read_index(adapted)
+    assert ident.packed and ident.sha256 == load_model().sha256
+    assert run("verify", adapted, "--against", folder).exit_code == 0
+    out = tmp_path / "out"
+    assert run("decompress", adapted, "-o", out).exit_code == 0
+    assert len(list(out.rglob("*.png"))) == len(sources)
+
+
+def test_minutes_without_adapt_is_a_usage_error(tmp_path):
+    result = run("compress", tmp_path, "-o", tmp_path / "a.rca", "--minutes", "1")
+    assert result.exit_code == 2 and "--minutes: only with --adapt" in result.stderr

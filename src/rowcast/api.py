@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import fnmatch
 import hashlib
+import importlib.util
 import os
 import shutil
 import tempfile
@@ -65,6 +66,7 @@ class Summary:
     model: ModelIdentity
     entries: list[dict] = field(default_factory=list)
     archive_bytes: int = 0
+    adaptation: dict | None = None  # with --adapt: what it did and saved (`compress`)
 
     def count(self, kind: str) -> int:
         return sum(1 for e in self.entries if e["kind"] == kind)
@@ -226,7 +228,8 @@ def _reason(exc: Exception, path: Path) -> str:
 def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | str | None = None,
              force: bool = False, progress: Progress = None, exclude: Sequence[str] = (),
              strip_metadata: bool = False, leave_out_refused: bool = False,
-             embed_model: bool = False) -> Summary:
+             embed_model: bool = False, adapt_minutes: float | None = None,
+             log: Callable[[str], None] = lambda line: None) -> Summary:
     """Compress every file under the inputs into one archive at `dest` (atomic).
 
     Images are coded (`entrycodec`), other files kept as bytes; files matching `exclude`
@@ -235,9 +238,17 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     which records them as left out with the reason. `strip_metadata` drops every image's
     metadata (what gives the values their meaning stays: `picture.MEANING`). Images are
     read and coded in groups, so memory stays bounded however many there are.
+
+    `adapt_minutes`: fine-tune the model on the images first (`trainjob.adapt`; needs
+    torch; `log` gets its lines), code every image with both models, and keep the adapted
+    one, packed into the archive, only when payloads plus model come out smaller; else
+    the archive is written again with the starting model. `Summary.adaptation` says which
+    and by how many bytes.
     """
     dest = Path(dest)
     check_destination(dest, force)
+    if adapt_minutes is not None and not adapt_minutes > 0:
+        raise UsageError(f"--minutes {adapt_minutes:g}: must be more than 0")
     found = collect_inputs(inputs, exclude)
     for f in found:
         try:
@@ -247,8 +258,14 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     refused = [f"{f.path}: {f.reason}" for f in found if f.action == "refused"]
     if refused and not leave_out_refused:
         raise RefusedError(refused)
-    net = _model(model)
-    engine = Engine(net)
+    net = start = _model(model)
+    engine = base = Engine(net)
+    asked_embed = embed_model
+    if adapt_minutes is not None:
+        adapted = _adapted(found, model, adapt_minutes, log)
+        if adapted is not None:
+            net, engine, embed_model = adapted, Engine(adapted), True
+    payloads = {"used": 0, "start": 0}  # image payload bytes with each model
     rows: list[dict] = []
 
     def entries() -> Iterator[Entry]:
@@ -277,29 +294,83 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                 group.append((f, *plan))
                 pixels += picture.width * picture.height
                 if len(group) >= GROUP_IMAGES or pixels >= GROUP_PIXELS:
-                    yield from _coded(engine, group, strip_metadata, rows, progress)
+                    yield from _coded(engine, group, strip_metadata, rows, progress,
+                                      None if engine is base else base, payloads)
                     group, pixels = [], 0
                 continue
             if progress:
                 progress(1)
-        yield from _coded(engine, group, strip_metadata, rows, progress)
+        yield from _coded(engine, group, strip_metadata, rows, progress,
+                          None if engine is base else base, payloads)
 
+    ident = identity(net, embed_model)
     try:
-        size = archive.write_archive(dest, identity(net, embed_model), entries(), force=force)
+        size = archive.write_archive(dest, ident, entries(), force=force)
     except ArchiveError as exc:
         raise UsageError(str(exc)) from None
     except OSError as exc:
         raise DataError(f"{exc.filename or dest}: {exc.strerror or exc}") from None
-    return Summary(dest, identity(net, embed_model), rows, size)
+    if adapt_minutes is None:
+        return Summary(dest, ident, rows, size)
+    if engine is base:
+        return Summary(dest, ident, rows, size, {
+            "from": start.name, "minutes": adapt_minutes, "kept": False,
+            "reason": "no 8-bit gray or colour image of 16 px or more to adapt on, or too "
+                      "short a run to reach its quantised part"})
+    adaptation = {"from": start.name, "minutes": adapt_minutes, "model": net.name,
+                  "model_bytes": len(ident.embedded),
+                  "payload_bytes": payloads["used"], "start_payload_bytes": payloads["start"]}
+    adaptation["saved_bytes"] = (payloads["start"] - payloads["used"]
+                                 - adaptation["model_bytes"])
+    adaptation["kept"] = adaptation["saved_bytes"] > 0
+    if not adaptation["kept"]:  # it did not pay: the plain archive
+        log("the adapted model does not pay for itself; coding with the starting model")
+        summary = compress(inputs, dest, model=model, force=True, exclude=exclude,
+                           strip_metadata=strip_metadata, leave_out_refused=leave_out_refused,
+                           embed_model=asked_embed)
+        return replace(summary, adaptation=adaptation)
+    return Summary(dest, ident, rows, size, adaptation)
+
+
+ADAPT_PIXELS = 1 << 26  # pixels read to adapt on at most (the first images in path order)
+
+
+def _adapted(found: list[Found], model: Path | str | None, minutes: float,
+             log: Callable[[str], None]) -> IntModel | None:
+    """The model fine-tuned on the images found (up to ADAPT_PIXELS of them), or None."""
+    if importlib.util.find_spec("torch") is None:
+        raise UsageError("--adapt needs torch (pip install 'rowcast[train]'; its CPU build "
+                         "is enough)")
+    from rowcast import trainjob
+
+    pictures, pixels = [], 0
+    for f in found:
+        if f.action != "image" or pixels >= ADAPT_PIXELS:
+            continue
+        try:
+            picture = imagefile.read_picture(f.path)
+        except ImageError:
+            continue  # the coding pass reports it
+        pictures.append(picture)
+        pixels += picture.width * picture.height
+    start = "default" if model is None else str(model)
+    name = f"{Path(start).stem}-adapted"
+    return trainjob.adapt(pictures, start, minutes, name, log)
 
 
 def _coded(engine: Engine, group: list[tuple[Found, str, Picture]], stripped: bool,
-           rows: list[dict], progress: Progress) -> Iterator[Entry]:
+           rows: list[dict], progress: Progress, start: Engine | None = None,
+           payloads: dict | None = None) -> Iterator[Entry]:
     """Archive entries of a group of pictures, coded together, in order; each is restored
-    under its name and picture from `imagefile.restored`."""
+    under its name and picture from `imagefile.restored`. With `start`, the pictures are
+    also coded with that engine and both payloads' bytes summed into `payloads`."""
     if not group:
         return
     coded = entrycodec.encode_pictures(engine, [p for _, _, p in group])
+    if start is not None:
+        other = entrycodec.encode_pictures(start, [p for _, _, p in group])
+        payloads["used"] += sum(len(c.payload) for c in coded)
+        payloads["start"] += sum(len(c.payload) for c in other)
     for (f, restore, picture), enc in zip(group, coded, strict=True):
         extras = pack_picture_extras(picture)
         kinds = tuple(k for k, _ in picture.extras)

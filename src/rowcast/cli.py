@@ -123,7 +123,12 @@ def compress(
         "kept, and record those as left out with the reason.")] = False,
     embed_model: Annotated[bool, typer.Option(
         "--embed-model", help="Store the model file in the archive, so that decoding needs "
-        "no model file (its bytes count in the archive's size).")] = False,
+        "no model file (packed: its bytes count in the archive's size).")] = False,
+    adapt: Annotated[bool, typer.Option(
+        "--adapt", help="First fine-tune the model on these images and embed it, if payloads "
+        "plus model come out smaller (needs rowcast[train]).")] = False,
+    minutes: Annotated[float | None, typer.Option(
+        "--minutes", help="With --adapt: fine-tuning time in minutes (default 2).")] = None,
     quiet: QuietOpt = False,
     as_json: JsonOpt = False,
     threads: ThreadsOpt = None,
@@ -132,14 +137,26 @@ def compress(
 
     Images are coded at full depth with their metadata; other files are kept as bytes."""
     with _guard(threads):
+        if minutes is not None and not adapt:
+            raise UsageError("--minutes: only with --adapt")
+        options = {"model": model, "force": force, "exclude": exclude or (),
+                   "strip_metadata": strip_metadata, "leave_out_refused": leave_out_refused,
+                   "embed_model": embed_model}
         try:
-            found = api.collect_inputs(inputs, exclude or ())
-            with _bar("compressing", len(found), quiet or as_json) as tick:
-                summary = api.compress(inputs, output, model=model, force=force,
-                                       progress=tick, exclude=exclude or (),
-                                       strip_metadata=strip_metadata,
-                                       leave_out_refused=leave_out_refused,
-                                       embed_model=embed_model)
+            if adapt:
+                from rich.live import Live
+
+                from rowcast.trainjob import Progress
+
+                state = Progress(60 * (minutes or ADAPT_MINUTES))
+                live = not (quiet or as_json) and err.is_terminal
+                with Live(state, console=err, transient=True) if live else contextlib.nullcontext():
+                    summary = api.compress(inputs, output, adapt_minutes=minutes or ADAPT_MINUTES,
+                                           log=state.update, **options)
+            else:
+                found = api.collect_inputs(inputs, exclude or ())
+                with _bar("compressing", len(found), quiet or as_json) as tick:
+                    summary = api.compress(inputs, output, progress=tick, **options)
         except api.RefusedError as exc:
             _refused(exc)
         if as_json:
@@ -151,10 +168,30 @@ def compress(
                                   "image_bytes": summary.image_bytes,
                                   "subpixels": summary.subpixels,
                                   "bits_per_subpixel": summary.bits_per_subpixel,
-                                  "model": summary.model.name, "entries": summary.entries}),
+                                  "model": summary.model.name,
+                                  "adaptation": summary.adaptation,
+                                  "entries": summary.entries}),
                       markup=False)
         elif not quiet:
             _summary(output, summary)
+
+
+ADAPT_MINUTES = 2.0  # compress --adapt's fine-tuning time when --minutes is not given
+
+
+def _adaptation_line(a: dict) -> str:
+    """What --adapt did, in one line."""
+    if "reason" in a:
+        return f"  not adapted: {a['reason']}"
+    mine = a["payload_bytes"] + a["model_bytes"]
+    if a["kept"]:
+        return (f"  adapted {a['from']} for {a['minutes']:g} min: payloads {a['payload_bytes']} "
+                f"+ model {a['model_bytes']} = {mine} bytes instead of "
+                f"{a['start_payload_bytes']}, {a['saved_bytes']} bytes saved "
+                f"({a['saved_bytes'] / a['start_payload_bytes']:.1%})")
+    return (f"  adapting {a['from']} for {a['minutes']:g} min did not pay: payloads "
+            f"{a['payload_bytes']} + model {a['model_bytes']} = {mine} bytes against "
+            f"{a['start_payload_bytes']}; coded with {a['from']}")
 
 
 def _plural(count: int, word: str) -> str:
@@ -171,6 +208,8 @@ def _summary(output: Path, summary: api.Summary) -> None:
     images = summary.count("image")
     out.print(f"{output}: {summary.archive_bytes} bytes, model {summary.model.name}"
               f"{_embedded(summary.model)}", markup=False)
+    if (a := summary.adaptation) is not None:
+        out.print(_adaptation_line(a), markup=False)
     if images:
         out.print(f"  {_plural(images, 'image')} coded: {summary.subpixels} subpixels -> "
                   f"{summary.image_bytes} bytes ({summary.bits_per_subpixel:.3f} bits per "

@@ -385,6 +385,37 @@ def run(job: Job, log: Log = lambda line: None) -> Report:
                   [(p.as_posix(), why) for p, why in chosen.unused], figures)
 
 
+ADAPT_VALIDATION = 4  # pictures the adaptation run also validates on (it trains on all)
+
+
+def adapt(pictures: Sequence[Picture], start: str, minutes: float, name: str,
+          log: Log = lambda line: None) -> IntModel | None:
+    """`start` (a model file or bundled name) fine-tuned for `minutes` on the pictures
+    being compressed, as `rowcast train` trains (8-bit gray and colour planes), or None when
+    none can be trained on or the run ends before its quantisation-aware part. It fits
+    these very pictures: whether it pays is for the caller to measure (`api.compress`)."""
+    usable = [p for p in pictures if p.format in TRAINABLE and min(p.width, p.height) >= CROP_MIN]
+    if not usable:
+        return None
+    job = Job((), Path(name), minutes, start=start)
+    with tempfile.TemporaryDirectory(prefix="rowcast-adapt-") as tmp:
+        folder = Path(tmp)
+        for sub, chosen in (("train", usable), ("held", usable[:: -(-len(usable)
+                                                                     // ADAPT_VALIDATION)])):
+            (folder / sub).mkdir()
+            for i, picture in enumerate(chosen):
+                Image.fromarray(colour_planes(picture)).save(folder / sub / f"{i:06d}.png")
+        net, meta = _run_training(job, folder, crop_size(usable), log)
+    if not net.quant:
+        return None
+    summary = meta["state"]["summary"]
+    training = {"data": f"compress --adapt: {len(usable)} pictures of the archive",
+                "steps": summary["steps"], "minutes": round(summary["minutes"], 2),
+                "from": start}
+    card, tensors = export(net, name, {"training": training})
+    return model_from_bytes(to_bytes(card, tensors), f"model adapted from {start}")
+
+
 @dataclass
 class Progress:
     """The state a live line shows, updated from `rowcast.train`'s log lines: steps of this
