@@ -2,11 +2,16 @@
 Python (`codec._decode_rows`, which the trace tests hold against the encoder's tables) for
 every kind of payload, model and shape, and refuses what the reference refuses."""
 
+import functools
+
 import numpy as np
 import pytest
+from conftest import GOLDEN, TINY
 from test_codec import EDGE_SHAPES, forced_adaptive, small_model
+from test_golden import FORMAT7, LEGACY
 
-from rowcast import rowdecoder
+import rowcast
+from rowcast import codec, rowdecoder
 from rowcast.codec import decode_batch, encode_batch
 from rowcast.entropy import PayloadError
 
@@ -70,3 +75,19 @@ def test_a_damaged_payload_is_refused_by_the_compiled_decoder(default_engine, rg
 def test_every_bundled_model_has_a_compiled_kernel(default_engine):
     """The int32 accumulators hold every layer of the bundled model (bounds < 2**31)."""
     assert rowdecoder.kernel_of(default_engine) is not None
+
+
+@pytest.mark.parametrize(("archive", "model"), [(case[0], case[1]) for case in LEGACY]
+                         + [(FORMAT7.name, TINY)])
+def test_every_golden_archive_decodes_alike_in_both_decoders(archive, model, monkeypatch):
+    """Each committed golden archive (formats 1 to 7, every method and layout, one and two
+    components): the compiled decoder restores what the reference restores."""
+    compiled = [(e.path, c) for e, c in rowcast.decode_entries(GOLDEN / archive, model=model)]
+    reference_decode = functools.partial(codec.decode_batch, compiled=False)
+    monkeypatch.setattr(codec, "decode_batch", reference_decode)
+    reference = [(e.path, c) for e, c in rowcast.decode_entries(GOLDEN / archive, model=model)]
+    assert [p for p, _ in compiled] == [p for p, _ in reference]
+    for (path, mine), (_, theirs) in zip(compiled, reference, strict=True):
+        same = (np.array_equal(mine.values, theirs.values) if hasattr(mine, "values")
+                else mine == theirs)
+        assert same, path

@@ -288,7 +288,8 @@ def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adapti
         raise ValueError(f"no encoder for method {method!r}")
     if layout not in LAYOUTS:
         raise ValueError(f"no payload layout {layout!r}")
-    parts = [images[a:b] for a, b in shares(len(images), workers)]
+    pixels = images[0].shape[1] * images[0].shape[2] if images else 0
+    parts = [images[a:b] for a, b in shares(len(images), workers, pixels)]
     return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout),
                                     parts) for c in part]
 
@@ -524,7 +525,7 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
         return _decode(engine, *part, planes, height, width, report, trace, layout,
                        compiled and trace is None)
 
-    cuts = shares(len(payloads), 1 if trace is not None else workers)
+    cuts = shares(len(payloads), 1 if trace is not None else workers, height * width)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
     if compiled and trace is None and len(parts) > 1:  # load the compiled loop once, in the
         _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, layout, True)  # parent
