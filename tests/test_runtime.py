@@ -8,7 +8,11 @@ import sys
 import textwrap
 from pathlib import Path
 
+import numpy as np
 from conftest import TINY
+from PIL import Image
+
+import rowcast
 
 
 def test_coding_and_decoding_import_no_torch(tmp_path: Path) -> None:
@@ -32,3 +36,25 @@ def test_coding_and_decoding_import_no_torch(tmp_path: Path) -> None:
     assert result.returncode == 0, result.stderr
     assert result.stdout.strip() == "[]"
     assert (tmp_path / "out" / "a.png").exists()
+
+
+def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
+    """`rowcast --help` and `rowcast list` start fast: they import neither torch nor numba
+    (numba's import and first call cost about half a second; only coding needs them)."""
+    Image.fromarray(np.zeros((4, 4), np.uint8)).save(tmp_path / "a.png")
+    rowcast.compress([tmp_path / "a.png"], tmp_path / "a.rowcast", model=TINY)
+    for args in (["--help"], ["list", str(tmp_path / "a.rowcast")]):
+        script = textwrap.dedent(f"""
+            import sys
+            from rowcast import cli
+            sys.argv = ["rowcast", *{args!r}]
+            try:
+                cli.main()
+            except SystemExit:
+                pass
+            print(sorted({{m.split(".")[0] for m in sys.modules}} & {{"numba", "torch"}}))
+        """)
+        result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+
+        assert result.returncode == 0, result.stderr
+        assert result.stdout.strip().splitlines()[-1] == "[]", args

@@ -24,6 +24,7 @@ from numba import njit
 
 from rowcast import entropy, feedback, rangecoder
 from rowcast import family as fam
+from rowcast.intkernels import requantised
 from rowcast.predictor import Engine
 from rowcast.tables import LEVELS, MEANS, SPAN, symbol_counts
 
@@ -202,14 +203,6 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
 
 
 @njit(cache=True, nogil=True)
-def _requantised(acc: np.int64, mult: np.int64, shift: int, relu: bool) -> np.int64:
-    out = (acc * mult + (np.int64(1) << (shift - 1))) >> shift
-    if relu:
-        out = min(max(out, 0), 255)
-    return out
-
-
-@njit(cache=True, nogil=True)
 def _dense(a, w, bias, mult, shift, relu, out):
     """out[b] = the requantised a[b] @ w.T + bias: int16 products summed in int32, then a
     separate requantising loop (kept apart, and the sums kept in int32, so that both
@@ -222,7 +215,7 @@ def _dense(a, w, bias, mult, shift, relu, out):
                 s += np.int32(a[b, k]) * np.int32(w[j, k])
             acc[j] = s
         for j in range(w.shape[0]):
-            out[b, j] = _requantised(np.int64(acc[j]) + bias[j], mult[j], shift, relu)
+            out[b, j] = requantised(np.int64(acc[j]) + bias[j], mult[j], shift, relu)
 
 
 @njit(cache=True, nogil=True)
@@ -245,7 +238,7 @@ def _stack_layer(pair, cin, w, bias, mult, shift, out):
                     s += np.int32(window[k]) * np.int32(flat[o, k])
                 acc[o] = s
             for o in range(w.shape[0]):
-                out[b, x, o] = _requantised(np.int64(acc[o]) + bias[o], mult[o], shift, True)
+                out[b, x, o] = requantised(np.int64(acc[o]) + bias[o], mult[o], shift, True)
 
 
 
@@ -264,7 +257,7 @@ def _head(x, y, acc, img, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, a1, a2, ra
                     for k in range(hidden):
                         h1[k] += v * wl[d - 1, c, k]
         for k in range(hidden):
-            a1[b, k] = _requantised(np.int64(h1[k]), m1[k], s1, True)
+            a1[b, k] = requantised(np.int64(h1[k]), m1[k], s1, True)
     _dense(a1, w2, b2, m2, s2, True, a2)
     _dense(a2, w3, b3, m3, s3, False, raw)
 
