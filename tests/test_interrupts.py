@@ -13,10 +13,13 @@ import sys
 import textwrap
 import time
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
 from PIL import Image
+
+from rowcast import cli
 
 ENTRY = [sys.executable, "-c", "from rowcast.cli import main; main()"]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1"}
@@ -191,3 +194,23 @@ def test_the_next_decompress_clears_what_a_killed_one_left(tmp_path: Path) -> No
     assert not left.exists() and live.is_dir()
     assert sorted(p.name for p in out.iterdir()) == sorted(
         [live.name, *(p.name for p in (tmp_path / "in").iterdir())])
+
+
+def fake_frame(path: str, back=None) -> SimpleNamespace:
+    return SimpleNamespace(f_code=SimpleNamespace(co_filename=path), f_back=back)
+
+
+def test_a_stop_inside_the_compilers_callback_is_retried_not_lost() -> None:
+    """A signal that lands in llvmlite's ctypes callbacks (numba compiling on a first run)
+    would raise where ctypes drops the exception: the stop is deferred by a 50 ms alarm
+    instead, and outside them it unwinds at once."""
+    inside = fake_frame("/x/numba/core/codegen.py",
+                        fake_frame("/venv/site-packages/llvmlite/binding/executionengine.py"))
+    try:
+        cli._stop(signal.SIGTERM, inside)
+        assert 0 < signal.getitimer(signal.ITIMER_REAL)[0] <= 0.05
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, signal.SIG_DFL)
+    with pytest.raises(KeyboardInterrupt):
+        cli._stop(signal.SIGTERM, fake_frame("/src/rowcast/api.py"))

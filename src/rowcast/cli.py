@@ -513,9 +513,27 @@ def train_command(
                 out.print(item, markup=False)
 
 
-def _stop(signum: int, frame: object) -> None:
-    """SIGTERM and SIGHUP unwind like ^C, so every temporary file and folder is removed."""
+def _stop(signum: int, frame) -> None:
+    """SIGTERM and SIGHUP unwind like ^C, so every temporary file and folder is removed.
+
+    Not inside one of llvmlite's ctypes callbacks (numba compiling or loading its cache):
+    an exception raised there is printed and dropped, and the command would run on, so
+    the stop is tried again by SIGALRM every 50 ms until it is outside them."""
+    if _in_compiler_callback(frame):
+        signal.signal(signal.SIGALRM, _stop)
+        signal.setitimer(signal.ITIMER_REAL, 0.05)
+        return
     raise KeyboardInterrupt
+
+
+def _in_compiler_callback(frame) -> bool:
+    """Whether a frame or one of its callers is llvmlite's execution engine code."""
+    while frame is not None:
+        path = frame.f_code.co_filename.replace("\\", "/")
+        if "llvmlite/" in path and path.endswith("executionengine.py"):
+            return True
+        frame = frame.f_back
+    return False
 
 
 def main() -> None:
