@@ -1213,3 +1213,48 @@ def test_api_round_trip_and_verify(made: Made, tmp_path: Path) -> None:
     assert {p.relative_to(tmp_path / "out").as_posix() for p in restored.written} == set(SOURCES)
     assert restored.failed == [] and restored.left_out == []
     assert (check.ok, check.checked, check.problems) == (True, 6, [])
+
+
+@pytest.mark.skipif(not hasattr(os, "symlink"), reason="needs symbolic links")
+def test_a_link_to_a_file_is_archived_as_its_content_and_said_so(tmp_path: Path) -> None:
+    """Nothing changes silently: a symbolic link to an image or another file is archived
+    as the content it points to, the summary and --json name it with its target, and it
+    comes back as a regular file with that content."""
+    folder = tmp_path / "in"
+    (folder / "sub").mkdir(parents=True)
+    ramp = np.tile(np.arange(32, dtype=np.uint8) * 7, (16, 1))
+    Image.fromarray(ramp).save(folder / "sub" / "a.png")
+    (folder / "notes.txt").write_text("calibration 3\n")
+    (folder / "same.png").symlink_to("sub/a.png")
+    (folder / "today.txt").symlink_to("notes.txt")
+    archive = tmp_path / "a.rca"
+    result = run("compress", folder, "-o", archive)
+    assert result.exit_code == 0, result.stderr
+    assert "2 symbolic links archived as the files they point to" in result.stdout
+    assert "same.png -> sub/a.png" in result.stdout and "today.txt -> notes.txt" in result.stdout
+    rows = json.loads(run("compress", folder, "-o", archive, "--force", "--json").stdout)
+    assert {e["path"]: e["link"] for e in rows["entries"] if e.get("link")} == {
+        "same.png": "sub/a.png", "today.txt": "notes.txt"}
+    assert run("verify", archive, "--against", folder).exit_code == 0
+    out = tmp_path / "out"
+    assert run("decompress", archive, "-o", out).exit_code == 0
+    assert not (out / "same.png").is_symlink() and not (out / "today.txt").is_symlink()
+    assert (out / "today.txt").read_text() == "calibration 3\n"
+    assert np.array_equal(np.asarray(Image.open(out / "same.png")),
+                          np.asarray(Image.open(folder / "sub" / "a.png")))
+
+
+def test_an_empty_folder_is_recorded_as_left_out_with_the_reason(tmp_path: Path) -> None:
+    """An empty folder under the inputs does not vanish unsaid: it is an entry left out,
+    with the reason, in the summary, the archive and `list`; verify --against passes."""
+    folder = tmp_path / "in"
+    (folder / "night" / "none-yet").mkdir(parents=True)
+    (folder / "day").mkdir()
+    (folder / "day" / "log.txt").write_text("ok\n")
+    archive = tmp_path / "a.rca"
+    result = run("compress", folder, "-o", archive)
+    assert result.exit_code == 0, result.stderr
+    assert "night/none-yet (an empty folder" in result.stdout
+    listed = run("list", archive).stdout
+    assert "night/none-yet" in listed and "left out" in listed
+    assert run("verify", archive, "--against", folder).exit_code == 0

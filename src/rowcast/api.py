@@ -50,12 +50,14 @@ Progress = Callable[[int], None] | None  # called with the number of images or r
 @dataclass(frozen=True)
 class Found:
     """A file under the inputs and what will become of it: `action` is "image", "bytes",
-    "excluded" or "refused", with the reason for the last three."""
+    "excluded", "refused" or "empty folder", with the reason for the last four; `link` is
+    where a symbolic link to a file points (it is archived as that file's content)."""
 
     path: Path
     name: str
     action: str
     reason: str = ""
+    link: str | None = None
 
 
 @dataclass(frozen=True)
@@ -157,14 +159,18 @@ def _archive_model(src: Path, ident: ModelIdentity, model: Path | str | None) ->
     return net
 
 
-def _walk(root: Path) -> Iterator[tuple[Path, bool]]:
-    """(path, is a directory link) for every file under root, sorted, links not followed."""
+def _walk(root: Path, folders: bool = False) -> Iterator[tuple[Path, str]]:
+    """(path, kind) for every file under root, sorted, links not followed: kind "file", or
+    "folder link" for a link to a directory; with `folders`, also "empty folder" for each
+    directory below root that holds nothing."""
     for top, dirs, files in os.walk(root):
         dirs.sort()
         here = Path(top)
+        if folders and not dirs and not files and here != root:
+            yield here, "empty folder"
         for name in sorted(files + [d for d in dirs if (here / d).is_symlink()]):
             path = here / name
-            yield path, path.is_symlink() and path.is_dir()
+            yield path, "folder link" if path.is_symlink() and path.is_dir() else "file"
         dirs[:] = [d for d in dirs if not (here / d).is_symlink()]
 
 
@@ -186,19 +192,20 @@ def collect_inputs(inputs: Sequence[Path | str], exclude: Sequence[str] = ()) ->
     relative to it. `exclude` holds glob patterns matched against that path and its last
     component; a matching file is recorded as left out.
     """
-    listed: list[tuple[Path, str, bool]] = []
+    listed: list[tuple[Path, str, str]] = []
     for raw in inputs:
         src = Path(raw)
         if src.is_dir():
-            listed += [(p, p.relative_to(src).as_posix(), link) for p, link in _walk(src)]
+            listed += [(p, p.relative_to(src).as_posix(), kind)
+                       for p, kind in _walk(src, folders=True)]
         elif src.exists():
-            listed.append((src, src.name, False))
+            listed.append((src, src.name, "file"))
         else:
             raise UsageError(f"{src}: no such file or directory")
     if not listed:
         raise UsageError(f"{', '.join(map(str, inputs))}: no files found")
     found, seen = [], {}
-    for path, name, link in listed:
+    for path, name, kind in listed:
         if name in seen:
             raise UsageError(f"{path}: has the same archive name as {seen[name]}")
         seen[name] = path
@@ -206,16 +213,22 @@ def collect_inputs(inputs: Sequence[Path | str], exclude: Sequence[str] = ()) ->
                         or fnmatch.fnmatchcase(path.name, g)), None)
         if pattern is not None:
             found.append(Found(path, name, "excluded", f"excluded by --exclude {pattern}"))
-        elif link:
+        elif kind == "folder link":
             found.append(Found(path, name, "refused", "a link to a directory"))
+        elif kind == "empty folder":
+            found.append(Found(path, name, "empty folder", EMPTY_FOLDER))
         else:
             try:
                 sniffed = imagefile.sniff(path)
             except ImageError as exc:
                 found.append(Found(path, name, "refused", _reason(exc, path)))
                 continue
-            found.append(Found(path, name, sniffed.action, sniffed.reason))
+            link = os.readlink(path) if path.is_symlink() else None
+            found.append(Found(path, name, sniffed.action, sniffed.reason, link))
     return found
+
+
+EMPTY_FOLDER = "an empty folder: archives hold files, so it is recorded, not restored"
 
 
 def _reason(exc: Exception, path: Path) -> str:
@@ -380,7 +393,7 @@ def _coded(engine: Engine, group: list[tuple[Found, str, Picture]], stripped: bo
                      "subpixels": picture.values.size, "method": enc.method,
                      "parts": list(enc.parts), "bytes": size, "extras_bytes": len(extras),
                      "cross_entropy_bits": enc.cross_entropy, "carries": list(kinds),
-                     "restore_as": restore if restore != f.name else None,
+                     "restore_as": restore if restore != f.name else None, "link": f.link,
                      "bits_per_subpixel": 8.0 * size / max(1, picture.values.size)})
         if progress:
             progress(1)
@@ -397,7 +410,7 @@ def _kept(f: Found, rows: list[dict]) -> Entry:
     except OSError as exc:
         raise DataError(f"{f.path}: cannot be read ({exc.strerror or exc})") from None
     rows.append({"path": f.name, "kind": "file", "method": "bytes", "bytes": len(data),
-                 "reason": f.reason})
+                 "reason": f.reason, "link": f.link})
     return Entry(f.name, "file", "", 0, 0, "bytes", hashlib.sha256(data).digest(), data,
                  reason=f.reason)
 
@@ -646,7 +659,7 @@ def verify(src: Path | str, *, against: Path | str | None = None,
     problems: list[str] = []
     originals: dict[str, Path] = {}
     if against is not None:
-        originals = {str(p.relative_to(against).as_posix()): p for p, _ in _walk(Path(against))}
+        originals = {p.relative_to(against).as_posix(): p for p, _ in _walk(Path(against))}
         names = {e.path for e in entries}
         problems += [f"{path}: not in the archive" for name, path in originals.items()
                      if name not in names]

@@ -220,6 +220,12 @@ def _summary(output: Path, summary: api.Summary) -> None:
             out.print(f"  {_plural(len(rows), 'file')} {label}:", markup=False)
             for e in rows:
                 out.print(f"    {e['path']} ({e['reason']})", markup=False)
+    links = [e for e in summary.entries if e.get("link")]
+    if links:
+        out.print(f"  {_plural(len(links), 'symbolic link')} archived as the files they point "
+                  "to (restored as regular files):", markup=False)
+        for e in links:
+            out.print(f"    {e['path']} -> {e['link']}", markup=False)
 
 
 def _describe_kinds(kinds) -> str:
