@@ -280,6 +280,23 @@ def test_an_unknown_codec_is_a_usage_error(folder: Path, option: str) -> None:
     assert line.startswith("rowcast: error: --codecs: unknown codec") and "jpegls" in line
 
 
+@pytest.mark.parametrize("option", ["--json", "--csv", "--plot"])
+def test_an_existing_output_is_left_alone_without_force(folder: Path, tmp_path: Path,
+                                                        option: str) -> None:
+    """Like every command, bench refuses to replace a file unless --force; with it the
+    file is replaced."""
+    target = tmp_path / "mine.out"
+    target.write_text("keep me")
+    result = runner.invoke(app, ["bench", str(folder / "gray.png"), "--model", str(TINY),
+                                 "--codecs", "png", option, str(target)])
+    assert result.exit_code == 2 and "already exists" in result.stderr
+    assert target.read_text() == "keep me"
+    result = runner.invoke(app, ["bench", str(folder / "gray.png"), "--model", str(TINY),
+                                 "--codecs", "png", option, str(target), "--force"])
+    assert result.exit_code == 0, result.stderr
+    assert target.read_bytes() != b"keep me"
+
+
 def test_a_folder_without_images_is_a_usage_error(tmp_path: Path) -> None:
     """Nothing to measure: exit 2, one line naming the path."""
     (tmp_path / "a.txt").write_text("text")

@@ -374,6 +374,7 @@ def bench(
         "--csv", metavar="FILE", help="Write a row per image and codec.")] = None,
     plot_file: Annotated[Path | None, typer.Option(
         "--plot", metavar="FILE", help="Write a PNG chart (needs matplotlib).")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace existing output files.")] = False,
     threads: ThreadsOpt = None,
 ) -> None:
     """Measure rowcast and conventional lossless codecs on the same images.
@@ -386,8 +387,8 @@ def bench(
         except ValueError as exc:
             raise UsageError(f"--codecs: {exc}") from None
         for target in (json_file, csv_file, plot_file):
-            if target is not None and (target.is_dir() or not target.parent.is_dir()):
-                raise UsageError(f"{target}: not a file in an existing directory")
+            if target is not None:
+                api.check_destination(target, force)
         if plot_file is not None and importlib.util.find_spec("matplotlib") is None:
             raise UsageError(f"{plot_file}: --plot needs matplotlib "
                              "(pip install 'rowcast[bench]')")
