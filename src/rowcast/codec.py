@@ -290,6 +290,8 @@ def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adapti
         raise ValueError(f"no payload layout {layout!r}")
     pixels = images[0].shape[1] * images[0].shape[2] if images else 0
     parts = [images[a:b] for a, b in shares(len(images), workers, pixels)]
+    if len(parts) > 1:  # load the compiled kernels once, in the parent, before forking
+        engine.parallel(np.zeros((1, 3, 1, 1), np.uint8))
     return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout),
                                     parts) for c in part]
 
