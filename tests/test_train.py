@@ -126,6 +126,28 @@ def test_a_short_run_trains_resumes_and_exports_a_working_model(tmp_path):
     assert np.array_equal(decoded[0], image)
 
 
+def test_a_run_that_stops_improving_stops_early_and_keeps_its_best(tmp_path):
+    """With patience, a run checks its held-out bits ten times over its budget; once they
+    fail to improve that many times in a row it stops, well before the budget, and the
+    network it ends with is the best it measured (a learning rate of 1 wrecks it fast)."""
+    data = tmp_path / "images"
+    data.mkdir()
+    for i in range(3):
+        Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
+    Image.fromarray(smooth_image(9, 256)).save(data / "held.png")
+    lines: list[str] = []
+    cfg = Config(data=str(data), out=str(tmp_path / "run"), minutes=0.5, batch=4, width=8,
+                 hidden=16, depth=2, qat_at=0.0, lr=1.0, patience=1, validation=("held.png",))
+    train(cfg, log=lines.append)
+    _, meta = load_checkpoint(tmp_path / "run")
+    summary = meta["state"]["summary"]
+    assert any("stopped improving" in line for line in lines)
+    assert summary["minutes"] < 0.5 * cfg.minutes
+    best = min(float(line.split("best ")[1].rstrip(")")) for line in lines if "(best " in line)
+    assert summary["val_quant_bpsp"] == pytest.approx(best, abs=1e-4)
+    assert "--patience 1" in meta["state"]["commands"][-1]
+
+
 @pytest.mark.parametrize("quant", [False, True])
 def test_growing_the_head_keeps_what_the_network_computes(quant):
     """A wider head, a longer left window, the activity input and a deeper and wider row

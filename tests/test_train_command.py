@@ -177,6 +177,8 @@ def test_an_existing_output_is_left_alone_without_force(tmp_path):
     (["--from", "no-such.safetensors"], "no-such.safetensors"),
     (["--held-out", "missing-dir"], "missing-dir"),
     (["--minutes", "0"], "--minutes"),
+    (["--preset", "fast"], "only with --from-scratch"),
+    (["--from-scratch", "--preset", "huge"], "not one of standard, fast, small"),
 ])
 def test_a_wrong_request_is_one_usage_error_line(tmp_path, args, words):
     make_folder(tmp_path / "images", 3, others=False)
@@ -251,3 +253,14 @@ def test_an_adapted_model_that_pays_is_embedded_and_decodes_with_no_model_file(
 def test_minutes_without_adapt_is_a_usage_error(tmp_path):
     result = run("compress", tmp_path, "-o", tmp_path / "a.rca", "--minutes", "1")
     assert result.exit_code == 2 and "--minutes: only with --adapt" in result.stderr
+
+
+def test_stop_early_is_passed_to_training_and_recorded_in_the_card(tmp_path):
+    """--stop-early trains with patience on the held-out files (the stopping itself is
+    tests/test_train.py's) and the card records the command that ran."""
+    make_folder(tmp_path / "images", 6, others=False)
+    output = tmp_path / "m.safetensors"
+    result = run("train", tmp_path / "images", "-o", output, "--minutes", MINUTES,
+                 "--stop-early")
+    assert result.exit_code == 0, result.stderr
+    assert load_model(output).card["training"]["commands"][-1].endswith("--stop-early")

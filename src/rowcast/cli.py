@@ -485,6 +485,13 @@ def train_command(
         "(default: default).")] = None,
     scratch: Annotated[bool, typer.Option("--from-scratch", help="Start from a new network "
                                           "(hours on a CPU).")] = False,
+    preset: Annotated[str | None, typer.Option(
+        "--preset", metavar="NAME", help="With --from-scratch, the network: standard (the "
+        "bundled model's), fast (half its head: decodes faster), small (for quick trials); "
+        "default standard.")] = None,
+    stop_early: Annotated[bool, typer.Option(
+        "--stop-early", help="Stop once the held-out files' bits stop improving (three "
+        "checks in a row, ten a run) and keep the best; --minutes is then the most.")] = False,
     name: Annotated[str | None, typer.Option("--name", help="The model's name (default: the "
                                              "output file's stem).")] = None,
     device: Annotated[str, typer.Option("--device", help="Where training runs: cpu, or a "
@@ -500,15 +507,21 @@ def train_command(
     with _guard(None):
         if start is not None and scratch:
             raise UsageError("--from and --from-scratch: give one of them")
+        if preset is not None and not scratch:
+            raise UsageError("--preset: only with --from-scratch (a model keeps its network)")
         if importlib.util.find_spec("torch") is None:
             raise UsageError(f"{output}: rowcast train needs torch (pip install "
                              "'rowcast[train]'; its CPU build is enough)")
         from rich.live import Live
 
         from rowcast import trainjob
+        from rowcast.train import PRESETS
 
+        if (preset or "standard") not in PRESETS:
+            raise UsageError(f"--preset {preset}: not one of {', '.join(PRESETS)}")
         job = trainjob.Job(tuple(inputs), output, minutes, held_out,
-                           None if scratch else start or "default", name, device, force)
+                           None if scratch else start or "default", name, device, force,
+                           stop_early, preset or "standard")
         state = trainjob.Progress(minutes * 60)
         live = not (quiet or as_json) and err.is_terminal
         with Live(state, console=err, transient=True) if live else contextlib.nullcontext():

@@ -36,6 +36,7 @@ HOLD_EVERY = 5  # every 5th usable file, in path order, is held out (at least on
 CROP = 32  # the training crop's side, smaller only when the images are
 CROP_MIN = 16  # images smaller than this on a side are not trained on
 FINE_TUNE_LR = 3e-4  # the learning rate when continuing from a model
+STOP_PATIENCE = 3  # --stop-early: held-out checks without a better figure before stopping
 BASELINES = ("png", "jxl")
 TRAINABLE = {"L": "L", "RGB": "RGB", "LA": "L", "RGBA": "RGB"}  # format -> planes used
 Log = Callable[[str], None]
@@ -54,6 +55,8 @@ class Job:
     name: str | None = None
     device: str = "cpu"
     force: bool = False
+    stop_early: bool = False  # stop once the held-out files' bits stop improving
+    preset: str = "standard"  # the network trained from scratch (`train.PRESETS`)
 
     @property
     def model_name(self) -> str:
@@ -152,6 +155,10 @@ def command_line(job: Job) -> str:
     if job.held_out is not None:
         words += ["--held-out", str(job.held_out)]
     words += ["--from-scratch"] if job.start is None else ["--from", job.start]
+    if job.start is None and job.preset != "standard":
+        words += ["--preset", job.preset]
+    if job.stop_early:
+        words.append("--stop-early")
     if job.name:
         words += ["--name", job.name]
     if job.device != "cpu":
@@ -316,13 +323,14 @@ def _run_training(job: Job, folder: Path, crop: int, log: Log):
     from rowcast import train as trainer
 
     try:
-        sizes = {} if job.start is None else trainer.resumed_sizes(job.start)
+        sizes = (trainer.PRESETS[job.preset] if job.start is None
+                 else {k: v for k, v in trainer.resumed_sizes(job.start).items()
+                       if k in ("hidden", "left", "depth", "width")})
         cfg = trainer.Config(
             data=str(folder / "train"), out=str(folder / "run"), minutes=job.minutes,
             crop=crop, lr=trainer.Config.lr if job.start is None else FINE_TUNE_LR,
             held_out=str(folder / "held"), threads=os.cpu_count() or 1, device=job.device,
-            resume=job.start, **{k: sizes[k] for k in ("hidden", "left", "depth", "width")
-                                 if k in sizes})
+            resume=job.start, patience=STOP_PATIENCE if job.stop_early else 0, **sizes)
         trainer.train(cfg, log=log)
         return trainer.load_checkpoint(folder / "run")
     except SystemExit as exc:  # train.py's own refusals, each one line
