@@ -24,6 +24,7 @@ from rowcast.train import (
     load_checkpoint,
     load_pools,
     main,
+    narrow,
     sensor_frame,
     train,
 )
@@ -146,6 +147,33 @@ def test_a_run_that_stops_improving_stops_early_and_keeps_its_best(tmp_path):
     best = min(float(line.split("best ")[1].rstrip(")")) for line in lines if "(best " in line)
     assert summary["val_quant_bpsp"] == pytest.approx(best, abs=1e-4)
     assert "--patience 1" in meta["state"]["commands"][-1]
+
+
+def test_narrowing_the_head_keeps_its_strongest_units_and_trains_on(tmp_path):
+    """A smaller --hidden on resuming cuts each head layer to the units whose outgoing
+    weights are largest, with their own weights, and training continues from there."""
+    torch.manual_seed(0)
+    net = Predictor(width=8, hidden=12, depth=2, left=3)
+    with torch.no_grad():
+        net.head2.weight[:, [2, 5, 7]] *= 50  # head 1's strongest units
+        net.out.weight[:, [1, 4, 9]] *= 50  # head 2's
+    small = narrow(net, 3)
+    assert small.hidden == 3 and narrow(net, 12) is net
+    assert torch.equal(small.head1.weight, net.head1.weight[[2, 5, 7]])
+    assert torch.equal(small.head2.weight, net.head2.weight[[1, 4, 9]][:, [2, 5, 7]])
+    assert torch.equal(small.out.weight, net.out.weight[:, [1, 4, 9]])
+    assert torch.equal(small.rows[0].weight, net.rows[0].weight)
+
+    data = tmp_path / "images"
+    data.mkdir()
+    for i in range(2):
+        Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
+    train(Config(data=str(data), out=str(tmp_path / "run"), minutes=0.03, batch=2, width=8,
+                 hidden=12, depth=2))
+    main(str(data), str(tmp_path / "cut"), minutes=0.03, batch=2, hidden=6,
+         resume=str(tmp_path / "run"))
+    cut, meta = load_checkpoint(tmp_path / "cut")
+    assert cut.hidden == 6 and "--hidden 6" in meta["state"]["commands"][-1]
 
 
 @pytest.mark.parametrize("quant", [False, True])

@@ -62,6 +62,7 @@ class Config:
     resume: str | None = None  # a run, model file or bundled model name to continue from
     patience: int = 0  # with validation: stop after this many checks without a better
     # quantised figure and keep the best (0: train for the whole budget)
+    narrow: bool = False  # resuming: cut the head down to `hidden` units (`narrow`)
 
 
 # Named architectures for a network trained from scratch (`Config` fields). "standard" is
@@ -337,6 +338,32 @@ def grow(model: Predictor, hidden: int, left: int, activity: bool,
     return big
 
 
+def narrow(model: Predictor, hidden: int) -> Predictor:
+    """A copy of `model` whose head keeps `hidden` of its units in each of its two layers:
+    those whose outgoing weights are largest (by L2 norm), with their weights, biases and
+    steps. Training then recovers what the dropped units did; the row stack is unchanged."""
+    if hidden >= model.hidden:
+        return model
+    small = Predictor(model.width, hidden, model.depth, model.left, model.activity,
+                      model.components)
+    small.quant = model.quant
+    small.load_state_dict({k: v for k, v in model.state_dict().items()
+                           if not k.startswith(("head1.", "head2.", "out."))}, strict=False)
+    keep1 = torch.argsort(model.head2.weight.flatten(1).norm(dim=0), descending=True)[:hidden]
+    keep2 = torch.argsort(model.out.weight.flatten(1).norm(dim=0), descending=True)[:hidden]
+    keep1, keep2 = keep1.sort().values, keep2.sort().values
+    with torch.no_grad():
+        small.head1.weight.copy_(model.head1.weight[keep1])
+        small.head1.bias.copy_(model.head1.bias[keep1])
+        small.head2.weight.copy_(model.head2.weight[keep2][:, keep1])
+        small.head2.bias.copy_(model.head2.bias[keep2])
+        small.out.weight.copy_(model.out.weight[:, keep2])
+        small.out.bias.copy_(model.out.bias)
+        small.head1.log_step.copy_(model.head1.log_step)
+        small.head2.log_step.copy_(model.head2.log_step)
+    return small
+
+
 def _copy_units(old: QConv, new: QConv, columns: np.ndarray) -> None:
     """Put old's units into the first units of new, reading old input i at new input
     columns[i]; the old units ignore new's other inputs."""
@@ -430,6 +457,8 @@ def train(cfg: Config, log=print) -> Predictor:
     history, commands, step, before = [], [], 0, 0.0
     if cfg.resume:
         model, history, commands = starting_point(cfg.resume)
+        if cfg.narrow:  # a smaller head, to decode faster
+            model = narrow(model, cfg.hidden)
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
                      cfg.activity or model.activity, max(cfg.components, model.components),
                      max(cfg.depth, model.depth), max(cfg.width, model.width))
@@ -529,15 +558,16 @@ def main(
     [--hidden N --left N --activity --components 2 --depth N --width N --sensor F]
     [--held-out DIR] [--export FILE] [--device cuda] [--patience N]; sizes not given are
     the defaults for a new run and the run's own when resuming; larger ones grow it (see
-    `grow`); --sensor is the fraction of crops made faint noisy sensor frames; --held-out
-    names a folder of images to validate on, never trained on; --export writes the
-    finished run's integer model file, named for its stem; --device trains on a torch
-    device such as a GPU (the model file it writes codes the same on any machine);
-    --patience stops a run validated on --held-out after N checks without a better
-    quantised figure, keeping the best."""
+    `grow`), a smaller --hidden cuts the head down (`narrow`); --sensor is the fraction of
+    crops made faint noisy sensor frames; --held-out names a folder of images to validate
+    on, never trained on; --export writes the finished run's integer model file, named for
+    its stem; --device trains on a torch device such as a GPU (the model file it writes
+    codes the same on any machine); --patience stops a run validated on --held-out after N
+    checks without a better quantised figure, keeping the best."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
+    narrower = resume is not None and hidden is not None and hidden < sizes["hidden"]
     train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
                  resume=resume, threads=threads,
                  hidden=sizes["hidden"] if hidden is None else hidden,
@@ -545,7 +575,7 @@ def main(
                  components=components, depth=sizes["depth"] if depth is None else depth,
                  width=sizes["width"] if width is None else width,
                  sensor_fraction=sensor, held_out=held_out, device=device,
-                 patience=patience),
+                 patience=patience, narrow=narrower),
           log=lambda s: print(s, flush=True))
     if export:
         summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
