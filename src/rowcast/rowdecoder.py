@@ -141,6 +141,7 @@ class Kernel:
 
 @functools.cache
 def kernel_of(engine: Engine) -> Kernel | None:
+    """The compiled loop's kernel of an engine, made once per engine."""
     return Kernel.of(engine)
 
 
