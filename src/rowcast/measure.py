@@ -37,7 +37,7 @@ import tifffile
 from PIL import Image, features
 
 from rowcast import imagefile
-from rowcast.entrycodec import Wanted, decode_values, encode_pictures
+from rowcast.entrycodec import Wanted, decode_values, encode_pictures, png_of
 from rowcast.errors import DataError, UsageError
 from rowcast.picture import PALETTE, Picture, interleaved, pack_picture_extras, planar
 from rowcast.pixelformats import pixel_format
@@ -91,7 +91,8 @@ def _pillow_image(picture: Picture) -> Image.Image:
     """A Pillow image of the values (P with its palette, 1-bit as mode "1")."""
     fmt = picture.pixel_format
     if fmt.bits == 1:
-        return Image.fromarray(picture.values[0] * np.uint8(255), "L").convert("1")
+        gray = Image.fromarray(picture.values[0] * np.uint8(255), "L")
+        return gray.convert("1", dither=Image.Dither.NONE)  # 0 and 255 map exactly
     if fmt.bits == 16:
         return Image.fromarray(picture.values[0])  # Pillow's 16-bit gray, "I;16"
     image = Image.fromarray(interleaved(picture.values), "L" if fmt.palette else fmt.name)
@@ -104,13 +105,6 @@ def _pillow_save(image: Image.Image, kind: str, **options) -> bytes:
     buffer = io.BytesIO()
     image.save(buffer, kind, **options)
     return buffer.getvalue()
-
-
-def _png_encode(picture: Picture) -> bytes:
-    fmt = picture.pixel_format
-    if fmt.palette or fmt.bits == 1:
-        return _pillow_save(_pillow_image(picture), "PNG", optimize=True)
-    return bytes(imagecodecs.png_encode(interleaved(picture.values), level=9))
 
 
 def _png_decode(data: bytes, picture: Picture) -> Picture:
@@ -195,7 +189,7 @@ class Baseline:
 
 BASELINES: tuple[Baseline, ...] = (
     Baseline("png", "PNG, zlib level 9 (imagecodecs; Pillow optimize for palette and 1-bit)",
-             (*GRAY_COLOUR, "P", "1", *DEEP), _png_encode, _png_decode,
+             (*GRAY_COLOUR, "P", "1", *DEEP), png_of, _png_decode,
              imagecodecs.PNG.available),
     Baseline("webp", "WebP lossless, method 6, quality 100, exact (Pillow)", GRAY_COLOUR,
              _webp_encode, _webp_decode, features.check("webp")),
