@@ -290,8 +290,8 @@ def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adapti
         raise ValueError(f"no payload layout {layout!r}")
     pixels = images[0].shape[1] * images[0].shape[2] if images else 0
     parts = [images[a:b] for a, b in shares(len(images), workers, pixels)]
-    if len(parts) > 1:  # load the compiled kernels once, in the parent, before forking
-        engine.parallel(np.zeros((1, 3, 1, 1), np.uint8))
+    if len(parts) > 1:
+        load_compiled(engine)
     return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout),
                                     parts) for c in part]
 
@@ -529,9 +529,18 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
 
     cuts = shares(len(payloads), 1 if trace is not None else workers, height * width)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
-    if compiled and trace is None and len(parts) > 1:  # load the compiled loop once, in the
-        _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, layout, True)  # parent
+    if compiled and trace is None and len(parts) > 1:
+        load_compiled(engine)
     return np.concatenate(run_split(run, parts, progress))
+
+
+@functools.cache
+def load_compiled(engine: Engine) -> None:
+    """Load (or compile) the encoder's and decoder's compiled code for an engine once, by
+    coding a 1 x 1 image, so that processes forked afterwards inherit it instead of each
+    loading it again."""
+    engine.parallel(np.zeros((1, 3, 1, 1), np.uint8))
+    _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, "streamed", True)
 
 
 @functools.cache
