@@ -222,9 +222,10 @@ def _summary(output: Path, summary: api.Summary) -> None:
                 out.print(f"    {e['path']} ({e['reason']})", markup=False)
     links = [e for e in summary.entries if e.get("link")]
     if links:
-        what = "the file it points" if len(links) == 1 else "the files they point"
-        out.print(f"  {_plural(len(links), 'symbolic link')} archived as {what} to (restored "
-                  "as regular files):", markup=False)
+        what = ("the file it points to (restored as a regular file)" if len(links) == 1
+                else "the files they point to (restored as regular files)")
+        out.print(f"  {_plural(len(links), 'symbolic link')} archived as {what}:",
+                  markup=False)
         for e in links:
             out.print(f"    {e['path']} -> {e['link']}", markup=False)
 
