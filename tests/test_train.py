@@ -3,6 +3,7 @@ file that loads, codes exactly, and records its validation figures."""
 
 import shlex
 
+import imagecodecs
 import numpy as np
 import pytest
 import torch
@@ -10,6 +11,7 @@ import typer
 from PIL import Image
 from typer.testing import CliRunner
 
+from rowcast import deep
 from rowcast import family as fam
 from rowcast.codec import decode_batch, encode_batch
 from rowcast.network import Predictor, parameters_from_output
@@ -17,14 +19,19 @@ from rowcast.predictor import Engine
 from rowcast.quantize import bundled_names, export, load_model, to_network
 from rowcast.train import (
     Config,
+    bits_per_subpixel,
     calibrate,
     command,
+    evaluate,
     export_checkpoint,
     grow,
     load_checkpoint,
     load_pools,
     main,
     narrow,
+    own_validation_set,
+    read_image,
+    sample_batch,
     sensor_frame,
     train,
 )
@@ -291,6 +298,49 @@ def test_a_users_held_out_folder_is_validated_on_and_never_trained_on(tmp_path, 
     coded = encode_batch(Engine(model), tiles, "model")
     floor = sum(c.cross_entropy for c in coded) / sum(t.size for t in tiles)
     assert card["val_integer_bpsp"] == round(floor, 4)
+
+
+def test_a_16_bit_image_trains_as_the_plane_the_predictor_codes_never_clipped(tmp_path):
+    """Pillow turns 16-bit gray into 255 wherever a value passes 255; training reads it at
+    full depth (imagecodecs wrote it) and learns from `deep.coarse`, what the archive hands
+    the predictor for it. 16-bit colour keeps its three planes."""
+    rng = np.random.default_rng(5)
+    gray = (rng.integers(0, 40, (48, 40)) + 1000 * np.arange(40)).astype(np.uint16)
+    colour = rng.integers(0, 60000, (40, 48, 3)).astype(np.uint16)
+    (tmp_path / "ct.png").write_bytes(imagecodecs.png_encode(gray))
+    (tmp_path / "rgb16.png").write_bytes(imagecodecs.png_encode(colour))
+    plane = read_image(tmp_path / "ct.png")
+    assert plane.dtype == np.uint8 and plane.shape == (48, 40)
+    assert np.array_equal(plane, deep.split(gray[None])[1][0][0])
+    assert (plane == 255).mean() < 0.05 and plane.min() == 0
+    rgb = read_image(tmp_path / "rgb16.png")
+    assert rgb.shape == (40, 48, 4) and (rgb[..., 3] == 255).all()
+    assert np.array_equal(rgb[..., :3].transpose(2, 0, 1),
+                          deep.coarse(colour.transpose(2, 0, 1)))
+
+
+def test_gray_images_train_and_validate_as_one_coded_plane(tmp_path):
+    """A gray file stays one plane: its crops are masked to the plane the archive codes
+    for it (a gray picture is one plane, not three equal ones), and so are its
+    validation tiles."""
+    data = tmp_path / "gray"
+    data.mkdir()
+    Image.fromarray(smooth_image(1, 64)[..., 0]).save(data / "scope.png")
+    cfg = Config(data=str(data), out=str(tmp_path / "run"), validation=(), batch=6,
+                 gray_fraction=0.0, cutout_fraction=0.0)
+    photos, _, _ = load_pools(cfg)
+    assert photos and all(p.ndim == 2 for p in photos)
+    x, mask = sample_batch(np.random.default_rng(0), cfg, photos, [])
+    assert mask.tolist() == [[1.0, 0.0, 0.0]] * 6
+    assert torch.equal(x[:, 0], x[:, 1]) and torch.equal(x[:, 0], x[:, 2])
+    held = [read_image(data / "scope.png"), smooth_image(2, 64)]
+    tiles = own_validation_set(held)
+    assert tiles.mask.tolist() == [[1.0, 0.0, 0.0], [1.0, 1.0, 1.0]]
+    model = Predictor(8, 8, 1, 3, False, 1)
+    figure = evaluate(model, tiles, False)
+    gray_bits = bits_per_subpixel(model, tiles.x[:1], tiles.mask[:1]).item()
+    colour_bits = bits_per_subpixel(model, tiles.x[1:]).item()
+    assert figure == pytest.approx((gray_bits + 3 * colour_bits) / 4, rel=1e-5)
 
 
 def test_a_held_out_folder_without_images_is_refused(tmp_path):

@@ -1,4 +1,5 @@
-"""Specification of `rowcast train`: it trains on a folder's 8-bit images, holds part of them
+"""Specification of `rowcast train`: it trains on a folder's gray and colour images (16-bit ones
+as the 8-bit planes the predictor codes for them), holds part of them
 out reproducibly (or a whole `--held-out` folder), writes a model file that codes exactly,
 says which files it did not use and why, and reports the held-out files' coded bytes with
 the new model, the starting one, PNG and JPEG XL.
@@ -20,7 +21,7 @@ from PIL import Image
 from typer.testing import CliRunner, Result
 
 import rowcast
-from rowcast import measure, trainjob
+from rowcast import deep, measure, trainjob
 from rowcast.cli import app
 from rowcast.errors import UsageError
 from rowcast.heldout import RGB_PHOTOS, thumbnails, write_pngs
@@ -50,7 +51,8 @@ def domain(seed: int, size: int = 32) -> np.ndarray:
 
 def make_folder(folder: Path, count: int, others: bool = True) -> list[Path]:
     """`count` usable images (gray, and one RGBA whose colour planes are used) plus, with
-    `others`, a 16-bit PNG, a palette PNG and a text file; returns the usable ones."""
+    `others`, a usable 16-bit PNG, and a palette PNG and a text file that are not; returns
+    the usable ones."""
     folder.mkdir(parents=True)
     usable = []
     for i in range(count - 1):
@@ -61,8 +63,8 @@ def make_folder(folder: Path, count: int, others: bool = True) -> list[Path]:
     usable[-1].parent.mkdir()
     Image.fromarray(rgba, "RGBA").save(usable[-1])
     if others:
-        (folder / "deep.png").write_bytes(imagecodecs.png_encode(
-            domain(60).astype(np.uint16) * 257))
+        usable.append(folder / "deep.png")
+        usable[-1].write_bytes(imagecodecs.png_encode(domain(60).astype(np.uint16) * 257))
         Image.fromarray(domain(61) // 64).convert("P").save(folder / "map.png")
         (folder / "notes.txt").write_text("camera 3 log\n")
     return usable
@@ -70,7 +72,8 @@ def make_folder(folder: Path, count: int, others: bool = True) -> list[Path]:
 
 @pytest.fixture(scope="module")
 def trained(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, list[Path], Path, dict]:
-    """One run with --json on a folder of 10 usable images and 3 unusable files."""
+    """One run with --json on a folder of 11 usable images (one 16-bit) and 2 unusable
+    files."""
     root = tmp_path_factory.mktemp("train")
     usable = make_folder(root / "images", 10)
     model = root / "own.safetensors"
@@ -128,10 +131,21 @@ def test_every_file_not_trained_on_is_reported_with_its_reason(trained):
     folder, _, _, report = trained
     reasons = {r["reason"]: (r["count"], r["files"]) for r in report["not_trained_on"]}
     assert reasons["not an image"] == (1, [(folder / "notes.txt").as_posix()])
-    assert reasons["16-bit image (training takes 8-bit gray and colour)"] == (
-        1, [(folder / "deep.png").as_posix()])
     assert reasons["palette image (its values are indices, not intensities)"][0] == 1
-    assert sum(r["count"] for r in report["not_trained_on"]) == 3
+    assert sum(r["count"] for r in report["not_trained_on"]) == 2
+
+
+def test_a_16_bit_image_is_trained_on_as_the_plane_the_predictor_codes(trained, tmp_path):
+    """Read at full depth (imagecodecs wrote it), never clipped at 255: its training plane
+    is `deep.coarse` of its values, the plane `split` hands the predictor. Here it is the
+    second held-out file, so the held-out figures code it at full depth as archives do."""
+    folder, _, _, report = trained
+    assert (folder / "deep.png").as_posix() == report["held_out_files"][1]
+    picture = read_picture(folder / "deep.png")
+    assert picture.format == "L16" and picture.values.max() > 255
+    plane = trainjob.colour_planes(picture)
+    assert np.array_equal(plane, deep.split(picture.values)[1][0][0])
+    assert plane.min() == 0 and plane.max() > 100  # the scene, not a saturated frame
 
 
 def test_a_held_out_folder_is_validated_on_whole_and_never_trained_on(tmp_path):

@@ -328,7 +328,7 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     if engine is base:
         return Summary(dest, ident, rows, size, {
             "from": start.name, "minutes": adapt_minutes, "kept": False,
-            "reason": "no 8-bit gray or colour image of 16 px or more to adapt on, or too "
+            "reason": "no gray or colour image of 16 px or more to adapt on, or too "
                       "short a run to reach its quantised part"})
     adaptation = {"from": start.name, "minutes": adapt_minutes, "model": net.name,
                   "model_bytes": len(ident.embedded),

@@ -504,8 +504,9 @@ def train_command(
 ) -> None:
     """Adapt a model to your own images and write it as a model file.
 
-    Trains on 8-bit gray and colour images, holds part of them out, and reports what the
-    held-out files take coded with the new model, the starting one, PNG and JPEG XL."""
+    Trains on gray and colour images (16-bit ones as the 8-bit planes the predictor codes
+    for them), holds part of them out, and reports what the held-out files take coded with
+    the new model, the starting one, PNG and JPEG XL."""
     with _guard(None):
         if start is not None and scratch:
             raise UsageError("--from and --from-scratch: give one of them")

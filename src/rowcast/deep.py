@@ -41,6 +41,23 @@ def split(values: np.ndarray, extra: int = 0) -> tuple[bytes, list[np.ndarray],
     there are none) for a group's values (P, H, W) of 0..65535. `extra` moves that many
     more bits (up to `MAX_K` in all) from the coarse plane to the fine code: an encoder may
     try 0 and 1 and keep the shorter (`join` reads k from the parameters)."""
+    params, v = _mapped(values, extra)
+    k = params[3] & 15
+    coarse = (v >> k).astype(np.uint8)
+    code = fine_code(coarse, k, v & ((1 << k) - 1)) if k else None
+    return params, [coarse], code
+
+
+def coarse(values: np.ndarray) -> np.ndarray:
+    """The plane (P, H, W) uint8 that `split` gives the predictor for these values, without
+    coding the fine bits: what training on deep images learns from."""
+    params, v = _mapped(values, 0)
+    return (v >> (params[3] & 15)).astype(np.uint8)
+
+
+def _mapped(values: np.ndarray, extra: int) -> tuple[bytes, np.ndarray]:
+    """(params, (v - low) >> shift as int64) of a group's values; ValueError if they are
+    not (P, H, W) values of 0..65535."""
     v = np.asarray(values)
     if v.ndim != 3 or v.size == 0:
         raise ValueError(f"16-bit values of shape {v.shape}: want (planes, height, width)")
@@ -53,10 +70,7 @@ def split(values: np.ndarray, extra: int = 0) -> tuple[bytes, list[np.ndarray],
     shift = (common & -common).bit_length() - 1 if common else 0
     v >>= shift
     k = min(MAX_K, max(0, int(v.max()).bit_length() - 8) + extra)
-    params = bytes([FORMAT, low >> 8, low & 0xFF, shift << 4 | k])
-    coarse = (v >> k).astype(np.uint8)
-    code = fine_code(coarse, k, v & ((1 << k) - 1)) if k else None
-    return params, [coarse], code
+    return bytes([FORMAT, low >> 8, low & 0xFF, shift << 4 | k]), v
 
 
 def join(params: bytes, model_planes: list[np.ndarray], literal: np.ndarray | None,

@@ -12,16 +12,20 @@ from __future__ import annotations
 import json
 import math
 import time
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import torch
 from PIL import Image
 from safetensors.torch import load_file, save_file
 
+from rowcast import deep, imagefile
 from rowcast import family as fam
 from rowcast.network import Predictor, QConv, log2_likelihood, parameters_from_output
+from rowcast.pixelformats import BY_NAME
 
 PHOTO_SCALES = (2, 3, 4, 6, 8, 12, 16)
 THUMBNAIL = 256  # images this small on their short side are trained on at their own size
@@ -94,10 +98,11 @@ def command(cfg: Config) -> str:
 
 
 def _composite(rgba: np.ndarray, background: np.ndarray) -> np.ndarray:
-    """An RGBA cut-out over an RGB background of the same size, in integers."""
+    """An RGBA cut-out over an RGB or gray background of the same size, in integers."""
     rgb = rgba[..., :3].astype(np.int32)
     a = rgba[..., 3:4].astype(np.int32)
-    return ((rgb * a + background.astype(np.int32) * (255 - a) + 127) // 255).astype(np.uint8)
+    under = background.astype(np.int32).reshape(*background.shape[:2], -1)
+    return ((rgb * a + under * (255 - a) + 127) // 255).astype(np.uint8)
 
 
 def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.ndarray]:
@@ -115,7 +120,8 @@ def _pyramid(img: Image.Image, scales: tuple[int, ...], crop: int) -> list[np.nd
 
 
 def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
-    """(photo pyramids RGB, cut-out pyramids RGBA, validation images RGBA) from a directory.
+    """(photo pyramids RGB or gray, cut-out pyramids RGBA, validation images RGBA or gray)
+    from a directory, each read as `read_image` reads it.
 
     A sub-folder named `cutouts` holds RGBA cut-outs; everything else is a photograph.
     The images in the folder `cfg.held_out` are the validation images if it is given (and
@@ -125,19 +131,20 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
     photos, cutouts, held = [], [], []
     own = None if cfg.held_out is None else Path(cfg.held_out).resolve()
     if own is not None:
-        held = [np.asarray(_rgba(path)) for path in _images(own)]
+        held = [read_image(path) for path in _images(own)]
         if not held:
             raise SystemExit(f"{cfg.held_out}: no images to validate on")
     for path in _images(Path(cfg.data)):
         if own is not None and own in path.resolve().parents:
             continue
-        rgba = _rgba(path)
+        image = read_image(path)
         if own is None and path.name in cfg.validation:
-            held.append(np.asarray(rgba))
-        elif "cutouts" in path.parts:
-            cutouts += _pyramid(rgba, CUTOUT_SCALES, cfg.crop)
+            held.append(image)
+        elif "cutouts" in path.parts and image.ndim == 3:
+            cutouts += _pyramid(Image.fromarray(image), CUTOUT_SCALES, cfg.crop)
         else:
-            photos += _pyramid(rgba.convert("RGB"), PHOTO_SCALES, cfg.crop)
+            photos += _pyramid(Image.fromarray(image if image.ndim == 2 else image[..., :3]),
+                               PHOTO_SCALES, cfg.crop)
     if not photos:
         raise SystemExit(f"{cfg.data}: no training photographs found")
     return photos, cutouts, held
@@ -147,9 +154,19 @@ def _images(folder: Path) -> list[Path]:
     return [p for p in sorted(folder.rglob("*")) if p.suffix.lower() in IMAGE_SUFFIXES]
 
 
-def _rgba(path: Path) -> Image.Image:
+def read_image(path: Path) -> np.ndarray:
+    """An image file as training sees it: (H, W) uint8 for gray, (H, W, 4) RGBA otherwise.
+    16-bit files are read at full depth (`imagefile`) and become the 8-bit plane the
+    predictor codes for them (`deep.coarse`), never values clipped at 255."""
+    fmt = BY_NAME.get(imagefile.sniff(path).format)
+    if fmt is not None and fmt.bits == 16:
+        colour = list(fmt.groups[0])
+        planes = deep.coarse(imagefile.read_picture(path).values[colour])
+        if len(colour) == 1:
+            return planes[0]
+        return np.dstack([*planes, np.full(planes.shape[1:], 255, np.uint8)])
     with Image.open(path) as im:
-        return im.convert("RGBA")
+        return np.asarray(im.convert("L" if im.mode in ("L", "LA", "1") else "RGBA"))
 
 
 def _random_crop(rng: np.random.Generator, img: np.ndarray, c: int) -> np.ndarray:
@@ -194,16 +211,18 @@ def augment(rng: np.random.Generator, crop: np.ndarray, cfg: Config) -> np.ndarr
 
 
 def sample_batch(rng: np.random.Generator, cfg: Config, photos, cutouts) -> tuple:
-    """Random crops (B,3,c,c) and a mask (B,3) that is 0 on channels a gray crop lacks."""
+    """Random crops (B,3,c,c) and a mask (B,3) that is 0 on channels a gray crop lacks:
+    crops of gray images, and a `gray_fraction` of the colour ones turned gray."""
     xs, masks = [], []
     for _ in range(cfg.batch):
         if cutouts and rng.random() < cfg.cutout_fraction:
             crop = _cutout_crop(rng, cutouts[rng.integers(len(cutouts))], cfg.crop, photos)
         else:
             crop = _random_crop(rng, photos[rng.integers(len(photos))], cfg.crop)
-        crop = augment(rng, crop, cfg)
-        if rng.random() < cfg.gray_fraction:
-            crop = np.repeat(gray_of(crop)[..., None], 3, axis=2)
+        gray = crop.ndim == 2
+        crop = augment(rng, np.repeat(crop[..., None], 3, axis=2) if gray else crop, cfg)
+        if gray or rng.random() < cfg.gray_fraction:
+            crop = np.repeat((crop[..., 0] if gray else gray_of(crop))[..., None], 3, axis=2)
             masks.append([1.0, 0.0, 0.0])
         else:
             masks.append([1.0, 1.0, 1.0])
@@ -222,24 +241,42 @@ def own_tile_size(held: list[np.ndarray]) -> int:
     return min(64, *(min(a.shape[:2]) for a in held))
 
 
-def own_validation_set(held: list[np.ndarray]) -> torch.Tensor:
+class Tiles(NamedTuple):
+    """Validation tiles (N, 3, S, S), gray ones repeated to three channels, and the mask
+    (N, 3) of the channels coded (0 on the two a gray tile lacks)."""
+
+    x: torch.Tensor
+    mask: torch.Tensor
+
+    def __len__(self) -> int:
+        return len(self.x)
+
+
+def as_tiles(tiles: Sequence[np.ndarray]) -> Tiles:
+    """`Tiles` of (S, S) gray or (S, S, 3+) colour arrays."""
+    rgb = [np.repeat(t[..., None], 3, axis=2) if t.ndim == 2 else t[..., :3] for t in tiles]
+    masks = [[1.0, 0.0, 0.0] if t.ndim == 2 else [1.0, 1.0, 1.0] for t in tiles]
+    return Tiles(torch.from_numpy(np.stack([t.transpose(2, 0, 1) for t in rgb])).float(),
+                 torch.tensor(masks))
+
+
+def own_validation_set(held: list[np.ndarray]) -> Tiles:
     """Every tile of `own_tile_size` on a grid of a user's validation images, as they are
     (thumbnails are coded at their own size, so they are not reduced)."""
     size = own_tile_size(held)
-    tiles = [a[y : y + size, x : x + size, :3].transpose(2, 0, 1) for a in held
-             for y in range(0, a.shape[0] - size + 1, size)
-             for x in range(0, a.shape[1] - size + 1, size)]
-    return torch.from_numpy(np.stack(tiles)).float()
+    return as_tiles([a[y : y + size, x : x + size] for a in held
+                     for y in range(0, a.shape[0] - size + 1, size)
+                     for x in range(0, a.shape[1] - size + 1, size)])
 
 
-def validation_tiles(cfg: Config, held: list[np.ndarray]) -> torch.Tensor | None:
+def validation_tiles(cfg: Config, held: list[np.ndarray]) -> Tiles | None:
     """The run's validation tiles: a user's folder's or the corpus's; None without any."""
     if not held:
         return None
     return own_validation_set(held) if cfg.held_out is not None else validation_set(held)
 
 
-def validation_set(held: list[np.ndarray], size: int = 64) -> torch.Tensor:
+def validation_set(held: list[np.ndarray], size: int = 64) -> Tiles:
     """Fixed 64-px tiles of the held-out images: for each, at reductions 1, 2, 4, 8 and 16,
     the most opaque tiles on a grid (a photograph is opaque everywhere)."""
     tiles = []
@@ -250,10 +287,10 @@ def validation_set(held: list[np.ndarray], size: int = 64) -> torch.Tensor:
             h, w = small.shape[:2]
             grid = [small[y : y + size, x : x + size] for y in range(0, h - size + 1, size)
                     for x in range(0, w - size + 1, size)]
-            grid = [t for t in grid if t[..., 3].min() == 255]
+            grid = [t for t in grid if t.ndim == 2 or t[..., 3].min() == 255]
             step = max(1, len(grid) // 4)
-            tiles += [t[..., :3].transpose(2, 0, 1) for t in grid[::step][:4]]
-    return torch.from_numpy(np.stack(tiles)).float()
+            tiles += grid[::step][:4]
+    return as_tiles(tiles)
 
 
 def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | None = None):
@@ -267,14 +304,17 @@ def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | No
 
 
 @torch.no_grad()
-def evaluate(model: Predictor, tiles: torch.Tensor, quant: bool) -> float:
-    """Validation bits per subpixel in float or quantised mode."""
+def evaluate(model: Predictor, tiles: Tiles, quant: bool) -> float:
+    """Validation bits per coded subpixel in float or quantised mode."""
     saved, model.quant = model.quant, quant
     device = model.out.weight.device
-    total = sum(bits_per_subpixel(model, tiles[i : i + 16].to(device)).item()
-                * len(tiles[i : i + 16]) for i in range(0, len(tiles), 16))
+    total = 0.0
+    for i in range(0, len(tiles), 16):
+        mask = tiles.mask[i : i + 16]
+        total += bits_per_subpixel(model, tiles.x[i : i + 16].to(device),
+                                   mask.to(device)).item() * mask.sum().item()
     model.quant = saved
-    return total / len(tiles)
+    return total / tiles.mask.sum().item()
 
 
 @torch.no_grad()
@@ -589,7 +629,7 @@ def main(
               flush=True)
 
 
-def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
+def integer_bits_per_subpixel(model_bytes: bytes, tiles: Tiles) -> float:
     """Cross-entropy of the exported integer model on tiles: what the coder will pay."""
     from rowcast.codec import base_prediction, image_tables
     from rowcast.entropy import cross_entropy_bits
@@ -597,13 +637,15 @@ def integer_bits_per_subpixel(model_bytes: bytes, tiles: torch.Tensor) -> float:
     from rowcast.quantize import model_from_bytes
 
     engine = Engine(model_from_bytes(model_bytes, "exported model"))
-    x = tiles.numpy().astype(np.uint8)
+    x = tiles.x.numpy().astype(np.uint8)
+    planes = tiles.mask.sum(dim=1).int().tolist()
     bits = 0.0
     for start in range(0, len(x), 8):
         group = x[start : start + 8]
-        for out, rgb in zip(engine.parallel(group), group, strict=True):
-            bits += cross_entropy_bits(*image_tables(out, rgb, base_prediction(rgb), 3))
-    return bits / x.size
+        for out, rgb, p in zip(engine.parallel(group), group, planes[start : start + 8],
+                               strict=True):
+            bits += cross_entropy_bits(*image_tables(out, rgb, base_prediction(rgb), p))
+    return bits / (sum(planes) * x[0, 0].size)
 
 
 def export_checkpoint(run: Path, dest: Path, name: str) -> dict:

@@ -1,7 +1,8 @@
 """`rowcast train`: adapt a model to a folder of one's own images and say what it gained.
 
-The images are found as `compress` finds them; 8-bit gray and colour pictures (the colour
-planes of those with alpha) are written as PNG into a temporary folder laid out the way
+The images are found as `compress` finds them; gray and colour pictures (the colour planes
+of those with alpha; of 16-bit ones, the 8-bit plane the predictor codes for them, read at
+full depth) are written as PNG into a temporary folder laid out the way
 `rowcast.train.load_pools` reads one (`train/`, and `held/` as its `--held-out` folder),
 and `rowcast.train.train` runs there unchanged. A part of the files is held out of
 training: every `HOLD_EVERY`th in path order, or the whole of a `--held-out` folder. The
@@ -26,7 +27,7 @@ from PIL import Image
 from rich import box
 from rich.table import Table
 
-from rowcast import api, imagefile, measure
+from rowcast import api, deep, imagefile, measure
 from rowcast.errors import DataError, UsageError
 from rowcast.picture import Picture
 from rowcast.predictor import Engine
@@ -38,7 +39,8 @@ CROP_MIN = 16  # images smaller than this on a side are not trained on
 FINE_TUNE_LR = 3e-4  # the learning rate when continuing from a model
 STOP_PATIENCE = 3  # --stop-early: held-out checks without a better figure before stopping
 BASELINES = ("png", "jxl")
-TRAINABLE = {"L": "L", "RGB": "RGB", "LA": "L", "RGBA": "RGB"}  # format -> planes used
+TRAINABLE = {"L": "L", "RGB": "RGB", "LA": "L", "RGBA": "RGB",  # format -> planes used
+             "L16": "L", "RGB16": "RGB", "LA16": "L", "RGBA16": "RGB"}
 Log = Callable[[str], None]
 
 
@@ -65,7 +67,7 @@ class Job:
 
 @dataclass(frozen=True)
 class Candidate:
-    """An 8-bit gray or colour image file that training may use."""
+    """A gray or colour image file that training may use."""
 
     path: Path
     format: str
@@ -172,9 +174,7 @@ def unusable(sniffed: imagefile.Sniffed) -> str | None:
         return None
     if sniffed.format == "P":
         return "palette image (its values are indices, not intensities)"
-    if sniffed.format == "1":
-        return "1-bit image (training takes 8-bit gray and colour)"
-    return "16-bit image (training takes 8-bit gray and colour)"
+    return "1-bit image (training takes gray and colour)"
 
 
 def _scan(inputs: Sequence[Path]) -> tuple[list[Candidate], list[tuple[Path, str]]]:
@@ -213,9 +213,9 @@ def select(inputs: Sequence[Path], held_out: Path | None = None) -> Selection:
     found, unused = _scan(inputs)
     where = ", ".join(map(str, inputs))
     if not found:
-        raise UsageError(f"{where}: no 8-bit gray or colour images to train on")
+        raise UsageError(f"{where}: no gray or colour images to train on")
     if held_out is None and len(found) == 1:
-        raise UsageError(f"{where}: only one 8-bit gray or colour image ({found[0].path}); "
+        raise UsageError(f"{where}: only one gray or colour image ({found[0].path}); "
                          "at least 2 are needed to hold one out, or give --held-out DIR")
     if held_out is None:
         train_paths, held_paths = split([c.path for c in found])
@@ -236,17 +236,21 @@ def select(inputs: Sequence[Path], held_out: Path | None = None) -> Selection:
                for c in small]
     train = [c for c in train if c not in small]
     if not train:
-        raise UsageError(f"{where}: no 8-bit gray or colour images of at least {CROP_MIN} px "
+        raise UsageError(f"{where}: no gray or colour images of at least {CROP_MIN} px "
                          "to train on")
     if not held:
-        raise UsageError(f"{held_out}: no 8-bit gray or colour images to validate on")
+        raise UsageError(f"{held_out}: no gray or colour images to validate on")
     return Selection(train, held, unused)
 
 
 def colour_planes(picture: Picture) -> np.ndarray:
-    """An 8-bit gray or colour picture's colour planes as an (H, W) or (H, W, 3) array."""
+    """A gray or colour picture's colour planes as the predictor sees them, (H, W) or
+    (H, W, 3) uint8: a 16-bit picture's are the coarse planes of `deep.coarse`."""
     planes = 1 if TRAINABLE[picture.format] == "L" else 3
-    hwc = picture.values[:planes].transpose(1, 2, 0)
+    values = picture.values[:planes]
+    if picture.pixel_format.bits == 16:
+        values = deep.coarse(values)
+    hwc = values.transpose(1, 2, 0)
     return np.ascontiguousarray(hwc[..., 0] if planes == 1 else hwc)
 
 
@@ -373,7 +377,8 @@ def run(job: Job, log: Log = lambda line: None) -> Report:
     start_label = start_model.name if job.start is None else job.start
     training = {
         "data": f"rowcast train: {len(trained)} files of {', '.join(map(str, job.inputs))} "
-                "(8-bit gray and colour planes), as rowcast.train reads a folder",
+                "(gray and colour planes, 16-bit ones as their coarse planes), as "
+                "rowcast.train reads a folder",
         "validation": f"{len(held)} held-out files "
                       + (f"in {job.held_out}" if job.held_out is not None
                          else f"(every {HOLD_EVERY}th in path order)")
@@ -399,7 +404,7 @@ ADAPT_VALIDATION = 4  # pictures the adaptation run also validates on (it trains
 def adapt(pictures: Sequence[Picture], start: str, minutes: float, name: str,
           log: Log = lambda line: None) -> IntModel | None:
     """`start` (a model file or bundled name) fine-tuned for `minutes` on the pictures
-    being compressed, as `rowcast train` trains (8-bit gray and colour planes), or None when
+    being compressed, as `rowcast train` trains (gray and colour planes), or None when
     none can be trained on or the run ends before its quantisation-aware part. It fits
     these very pictures: whether it pays is for the caller to measure (`api.compress`)."""
     usable = [p for p in pictures if p.format in TRAINABLE and min(p.width, p.height) >= CROP_MIN]
