@@ -63,6 +63,7 @@ def test_a_sensor_frame_is_faint_noisy_and_sits_on_a_black_level():
     "--minutes 3",
     "--minutes 2.5 --lr 0.0007 --batch 16 --seed 11 --sensor 0.1",
     "--minutes 1 --resume default --lr 0.0005 --seed 3 --hidden 256 --left 6 --activity",
+    "--minutes 2 --resume default --lr 0.002 --biases-only",
 ])
 def test_a_runs_recorded_command_line_runs_that_run_again(monkeypatch, options):
     """What a checkpoint records as its command (`command`) gives, run again through the

@@ -22,7 +22,7 @@ from PIL import Image
 from typer.testing import CliRunner, Result
 
 import rowcast
-from rowcast import deep, measure, trainjob
+from rowcast import deep, measure, modelpack, trainjob
 from rowcast.cli import app
 from rowcast.errors import UsageError
 from rowcast.heldout import RGB_PHOTOS, thumbnails, write_pngs
@@ -221,6 +221,22 @@ def test_the_live_line_follows_the_training_log():
 
 
 # ---- compress --adapt ---------------------------------------------------------------------
+
+def test_adapting_trains_the_biases_alone_so_the_embedded_model_packs_small(tmp_path):
+    """Every weight, multiplier and shift stays the starting model's; biases move. Packed
+    against its start, such a model is a few hundred bytes where one with every weight
+    moved costs tens of kilobytes."""
+    pictures = [read_picture(p) for p in make_folder(tmp_path / "images", 6, others=False)]
+    adapted = trainjob.adapt(pictures, str(TINY), 0.1, "tiny-adapted")
+    start = load_model(TINY)
+    assert adapted is not None
+    for new, old in zip(adapted.layers, start.layers, strict=True):
+        assert np.array_equal(new.weight, old.weight)
+        assert np.array_equal(new.mult, old.mult) and new.shift == old.shift
+    assert any(not np.array_equal(new.bias, old.bias)
+               for new, old in zip(adapted.layers, start.layers, strict=True))
+    assert len(modelpack.pack(adapted, start)) < 1000
+
 
 def test_adapting_that_does_not_pay_leaves_the_plain_archive_byte_for_byte(tmp_path):
     """A few seconds of fine-tuning cannot pay for its packed model on a small folder: the

@@ -67,6 +67,8 @@ class Config:
     patience: int = 0  # with validation: stop after this many checks without a better
     # quantised figure and keep the best (0: train for the whole budget)
     narrow: bool = False  # resuming: cut the head down to `hidden` units (`narrow`)
+    biases_only: bool = False  # train the layers' biases alone; weights and steps stay, so
+    # the model differs from its start in a few hundred numbers (`compress --adapt`)
 
 
 # Named architectures for a network trained from scratch (`Config` fields). "standard" is
@@ -94,6 +96,7 @@ def command(cfg: Config) -> str:
     extra += f" --sensor {cfg.sensor_fraction:g}" * (cfg.sensor_fraction > 0)
     extra += f" --held-out {cfg.held_out}" * (cfg.held_out is not None)
     extra += f" --patience {cfg.patience}" * (cfg.patience > 0)
+    extra += " --biases-only" * cfg.biases_only
     return f"python -m rowcast.train {cfg.data} {cfg.out} --minutes {cfg.minutes:g}{extra}"
 
 
@@ -511,7 +514,11 @@ def train(cfg: Config, log=print) -> Predictor:
             log(f"validation at the start: {start_bpsp:.4f} bits per subpixel")
     commands.append(command(cfg))  # after a resume: the sizes of the model it continues
     model.to(device)
-    opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
+    if cfg.biases_only:
+        model.requires_grad_(False)
+        for layer in model.layers():
+            layer.bias.requires_grad_(True)
+    opt = torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=cfg.lr)
     out = Path(cfg.out)
     budget = cfg.minutes * 60.0
     start = time.monotonic()
@@ -593,17 +600,20 @@ def main(
     export: str | None = None,
     device: str = "cpu",
     patience: int = 0,
+    biases_only: bool = False,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
     [--hidden N --left N --activity --components 2 --depth N --width N --sensor F]
-    [--held-out DIR] [--export FILE] [--device cuda] [--patience N]; sizes not given are
+    [--held-out DIR] [--export FILE] [--device cuda] [--patience N] [--biases-only]; sizes
+    not given are
     the defaults for a new run and the run's own when resuming; larger ones grow it (see
     `grow`), a smaller --hidden cuts the head down (`narrow`); --sensor is the fraction of
     crops made faint noisy sensor frames; --held-out names a folder of images to validate
     on, never trained on; --export writes the finished run's integer model file, named for
     its stem; --device trains on a torch device such as a GPU (the model file it writes
     codes the same on any machine); --patience stops a run validated on --held-out after N
-    checks without a better quantised figure, keeping the best."""
+    checks without a better quantised figure, keeping the best; --biases-only trains the
+    layers' biases alone."""
     if components not in (1, 2):
         raise SystemExit("--components must be 1 or 2")
     sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
@@ -615,7 +625,7 @@ def main(
                  components=components, depth=sizes["depth"] if depth is None else depth,
                  width=sizes["width"] if width is None else width,
                  sensor_fraction=sensor, held_out=held_out, device=device,
-                 patience=patience, narrow=narrower),
+                 patience=patience, narrow=narrower, biases_only=biases_only),
           log=lambda s: print(s, flush=True))
     if export:
         summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
