@@ -58,3 +58,32 @@ def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
 
         assert result.returncode == 0, result.stderr
         assert result.stdout.strip().splitlines()[-1] == "[]", args
+
+
+def test_a_small_decode_skips_loading_the_compiled_decoder(tmp_path: Path) -> None:
+    """Decompressing one thumbnail of up to REFERENCE_PIXELS runs the reference decoder,
+    which is done before numba would have loaded; a larger job loads the compiled loop.
+    Both restore the same pixels (checked against the files by Pillow)."""
+    rng = np.random.default_rng(4)
+    sizes = {"small": (40, 40), "large": (80, 80)}
+    for name, (h, w) in sizes.items():
+        folder = tmp_path / name
+        folder.mkdir()
+        smooth = np.cumsum(rng.integers(-3, 4, (h, w, 3)), axis=1) + 128
+        Image.fromarray(np.clip(smooth, 0, 255).astype(np.uint8)).save(folder / "a.png")
+        rowcast.compress([folder], tmp_path / f"{name}.rowcast", model=TINY)
+    for name, loaded in (("small", "[]"), ("large", "['numba']")):
+        script = textwrap.dedent(f"""
+            import sys
+            import rowcast
+            assert not rowcast.decompress("{tmp_path}/{name}.rowcast", "{tmp_path}/out-{name}",
+                                          model="{TINY}").failed
+            print(sorted({{m.split(".")[0] for m in sys.modules}} & {{"numba"}}))
+        """)
+        result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+
+        assert result.returncode == 0, result.stderr
+        assert result.stdout.strip() == loaded, name
+        with Image.open(tmp_path / f"out-{name}" / "a.png") as back, \
+                Image.open(tmp_path / name / "a.png") as original:
+            assert np.array_equal(np.asarray(back), np.asarray(original))
