@@ -125,8 +125,8 @@ def compress(
         "--embed-model", help="Store the model file in the archive, so that decoding needs "
         "no model file (packed: its bytes count in the archive's size).")] = False,
     adapt: Annotated[bool, typer.Option(
-        "--adapt", help="First fine-tune the model on these images and embed it, if payloads "
-        "plus model come out smaller (needs rowcast[train]).")] = False,
+        "--adapt", help="First fine-tune the model's biases on these images and embed it, "
+        "if payloads plus model come out smaller (needs rowcast[train]).")] = False,
     minutes: Annotated[float | None, typer.Option(
         "--minutes", help="With --adapt: fine-tuning time in minutes (default 2).")] = None,
     quiet: QuietOpt = False,

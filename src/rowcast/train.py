@@ -15,7 +15,6 @@ import time
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
-from typing import NamedTuple
 
 import numpy as np
 import torch
@@ -244,7 +243,8 @@ def own_tile_size(held: list[np.ndarray]) -> int:
     return min(64, *(min(a.shape[:2]) for a in held))
 
 
-class Tiles(NamedTuple):
+@dataclass(frozen=True)
+class Tiles:
     """Validation tiles (N, 3, S, S), gray ones repeated to three channels, and the mask
     (N, 3) of the channels coded (0 on the two a gray tile lacks)."""
 

@@ -430,7 +430,7 @@ def adapt(pictures: Sequence[Picture], start: str, minutes: float, name: str,
     if not net.quant:
         return None
     summary = meta["state"]["summary"]
-    training = {"data": f"compress --adapt: {len(usable)} pictures of the archive",
+    training = {"data": f"compress --adapt: {len(usable)} pictures of the archive, biases alone",
                 "steps": summary["steps"], "minutes": round(summary["minutes"], 2),
                 "from": start}
     card, tensors = export(net, name, {"training": training})
