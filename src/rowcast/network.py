@@ -187,6 +187,26 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
     return params
 
 
+def range_excess(y: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
+    """How far raw outputs y put the means (in pixels, before channel coupling) and log-scale
+    levels outside the family's range, on average; zero inside it. The clamps of
+    `parameters_from_output` pass no gradient, so a network that early in training drives
+    its scales to the top of the range and its means below 0 (its base prediction far off,
+    as on raw colour-filter-array frames) would stay there: training adds a little of this
+    to its loss to bring them back."""
+    components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
+    q = y * torch.tensor(fam.output_gains(components), dtype=y.dtype,
+                         device=y.device).view(1, -1, 1, 1)
+    base = fam.MU_SCALE * torch.from_numpy(fam.base_prediction(x.detach().cpu().numpy())).to(x)
+    mus, lss = [q[:, 0 : 2 * fam.CHANNELS : 2] + base], [q[:, 1 : 2 * fam.CHANNELS : 2]]
+    if components == 2:
+        mix = q[:, fam.OUTPUTS :]
+        mus, lss = [*mus, mix[:, 0::3] + base], [*lss, mix[:, 1::3]]
+    excess = sum((F.relu(fam.MU_LO - mu) + F.relu(mu - fam.MU_HI)).mean() / fam.MU_SCALE
+                 for mu in mus)
+    return excess + sum((F.relu(fam.LS_LO - ls) + F.relu(ls - fam.LS_HI)).mean() for ls in lss)
+
+
 def _bin_log_probability(mu4: torch.Tensor, ls8: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
     """Natural log of each value's bin under a discretised logistic (end bins take the tails)."""
     mu = mu4 / fam.MU_SCALE
