@@ -16,6 +16,7 @@ from typer.testing import CliRunner
 from rowcast import deep
 from rowcast import family as fam
 from rowcast.codec import decode_batch, encode_batch
+from rowcast.errors import DataError, UsageError
 from rowcast.network import Predictor, parameters_from_output, range_excess
 from rowcast.predictor import Engine
 from rowcast.quantize import bundled_names, export, load_model, to_network
@@ -37,6 +38,7 @@ from rowcast.train import (
     sample_batch,
     sensor_frame,
     train,
+    training_device,
 )
 
 
@@ -206,9 +208,9 @@ def test_growing_the_head_keeps_what_the_network_computes(quant):
         wider = grow(big, hidden=16, left=5, activity=True, depth=4, width=20)
         assert torch.equal(net(x), wider(x))  # with the activity input already in place
     assert wider.rows[1].weight[12:].abs().sum() > 0  # new units start at random, not zero
-    with pytest.raises(SystemExit, match="shallower"):
+    with pytest.raises(UsageError, match="shallower"):
         grow(big, hidden=16, left=5, activity=True, depth=3)
-    with pytest.raises(SystemExit, match="narrower"):
+    with pytest.raises(UsageError, match="narrower"):
         grow(big, hidden=16, left=5, activity=True, depth=4, width=10)
 
 
@@ -385,7 +387,7 @@ def test_a_held_out_folder_without_images_is_refused(tmp_path):
     data = tmp_path / "images"
     (data / "empty").mkdir(parents=True)
     Image.fromarray(smooth_image(1, 48)).save(data / "cam.png")
-    with pytest.raises(SystemExit, match="empty: no images to validate on"):
+    with pytest.raises(DataError, match="empty: no images to validate on"):
         load_pools(Config(data=str(data), out=str(tmp_path / "run"),
                           held_out=str(data / "empty")))
 
@@ -412,3 +414,5 @@ def test_training_runs_on_a_named_device_and_refuses_one_that_is_missing(tmp_pat
             main(str(data), str(tmp_path / "x"), minutes=0.01, device="cuda")
     with pytest.raises(SystemExit, match="--device warp9: not a torch device name"):
         main(str(data), str(tmp_path / "x"), minutes=0.01, device="warp9")
+    with pytest.raises(UsageError, match="--device warp9: not a torch device name"):
+        training_device("warp9")  # the library raises our own error; main exits with it

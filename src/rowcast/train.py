@@ -23,6 +23,7 @@ from safetensors.torch import load_file, save_file
 
 from rowcast import deep, imagefile
 from rowcast import family as fam
+from rowcast.errors import DataError, RowcastError, UsageError
 from rowcast.network import (
     Predictor,
     QConv,
@@ -144,7 +145,7 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
     if own is not None:
         held = [read_image(path) for path in _images(own)]
         if not held:
-            raise SystemExit(f"{cfg.held_out}: no images to validate on")
+            raise DataError(f"{cfg.held_out}: no images to validate on")
     for path in _images(Path(cfg.data)):
         if own is not None and own in path.resolve().parents:
             continue
@@ -157,7 +158,7 @@ def load_pools(cfg: Config) -> tuple[list[np.ndarray], list[np.ndarray], list[np
             photos += _pyramid(Image.fromarray(image if image.ndim == 2 else image[..., :3]),
                                PHOTO_SCALES, cfg.crop)
     if not photos:
-        raise SystemExit(f"{cfg.data}: no training photographs found")
+        raise DataError(f"{cfg.data}: no training photographs found")
     return photos, cutouts, held
 
 
@@ -367,9 +368,9 @@ def grow(model: Predictor, hidden: int, left: int, activity: bool,
             model.width):
         return model
     if model.activity and model.left != left:
-        raise SystemExit("cannot lengthen the left window of a model with the activity input")
+        raise UsageError("cannot lengthen the left window of a model with the activity input")
     if depth < model.depth or width < model.width:
-        raise SystemExit("cannot make the row stack shallower or narrower")
+        raise UsageError("cannot make the row stack shallower or narrower")
     big = Predictor(width, hidden, depth, left, activity, components)
     big.quant = model.quant
     for old, new in zip(model.rows, big.rows[: model.depth], strict=True):
@@ -474,7 +475,7 @@ def starting_point(resume: str) -> tuple[Predictor, list[dict], list[str]]:
     try:
         ints = load_model(Path(resume))
     except ModelError as exc:
-        raise SystemExit(f"--resume: {exc} (neither a training run nor a model file)") from None
+        raise UsageError(f"--resume: {exc} (neither a training run nor a model file)") from None
     done = ints.card.get("training", {})
     history = [{"steps": done.get("steps", 0), "minutes": done.get("minutes", 0.0),
                 "from_model": ints.sha256.hex()[:16]}]
@@ -490,14 +491,14 @@ def resumed_sizes(resume: str) -> dict:
 
 
 def training_device(name: str) -> torch.device:
-    """The torch device to train on; SystemExit naming the reason if there is none such.
+    """The torch device to train on; UsageError naming the reason if there is none such.
     Only training runs there: coding is integer arithmetic on the CPU."""
     try:
         device = torch.device(name)
     except RuntimeError:
-        raise SystemExit(f"--device {name}: not a torch device name") from None
+        raise UsageError(f"--device {name}: not a torch device name") from None
     if device.type == "cuda" and not torch.cuda.is_available():
-        raise SystemExit(f"--device {name}: this machine has no CUDA device")
+        raise UsageError(f"--device {name}: this machine has no CUDA device")
     return device
 
 
@@ -621,38 +622,42 @@ def main(
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
     [--hidden N --left N --activity --components 2 --depth N --width N --sensor F]
     [--held-out DIR] [--export FILE] [--device cuda] [--patience N] [--biases-only]; sizes
-    not given are
-    the defaults for a new run and the run's own when resuming; larger ones grow it (see
-    `grow`), a smaller --hidden cuts the head down (`narrow`); --sensor is the fraction of
+    not given are the defaults for a new run and the run's own when resuming; larger ones
+    grow it (see `grow`), a smaller --hidden cuts the head down (`narrow`); --sensor is the
+    fraction of
     crops made faint noisy sensor frames; --held-out names a folder of images to validate
     on, never trained on; --export writes the finished run's integer model file, named for
     its stem; --device trains on a torch device such as a GPU (the model file it writes
     codes the same on any machine); --patience stops a run validated on --held-out after N
     checks without a better quantised figure, keeping the best; --biases-only trains the
-    layers' biases alone."""
-    if components not in (1, 2):
-        raise SystemExit("--components must be 1 or 2")
-    sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
-    narrower = resume is not None and hidden is not None and hidden < sizes["hidden"]
-    train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
-                 resume=resume, threads=threads,
-                 hidden=sizes["hidden"] if hidden is None else hidden,
-                 left=sizes["left"] if left is None else left, activity=activity,
-                 components=components, depth=sizes["depth"] if depth is None else depth,
-                 width=sizes["width"] if width is None else width,
-                 sensor_fraction=sensor, held_out=held_out, device=device,
-                 patience=patience, narrow=narrower, biases_only=biases_only),
-          log=lambda s: print(s, flush=True))
-    if export:
-        summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
-        from rowcast.quantize import load_model
+    layers' biases alone. A refusal (`RowcastError`) exits with its one-line message."""
+    try:
+        if components not in (1, 2):
+            raise UsageError("--components must be 1 or 2")
+        sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
+        narrower = resume is not None and hidden is not None and hidden < sizes["hidden"]
+        train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
+                     resume=resume, threads=threads,
+                     hidden=sizes["hidden"] if hidden is None else hidden,
+                     left=sizes["left"] if left is None else left, activity=activity,
+                     components=components, depth=sizes["depth"] if depth is None else depth,
+                     width=sizes["width"] if width is None else width,
+                     sensor_fraction=sensor, held_out=held_out, device=device,
+                     patience=patience, narrow=narrower, biases_only=biases_only),
+              log=lambda s: print(s, flush=True))
+        if export:
+            summary = export_checkpoint(Path(out), Path(export), Path(export).stem)
+            from rowcast.quantize import load_model
 
-        figure, start = summary.get("val_integer_bpsp"), summary.get("val_start_bpsp")
-        print(f"{export}: model {Path(export).stem} ({load_model(Path(export)).sha256.hex()[:16]}"
-              f"), {summary['steps']} steps in {summary['minutes']} min, validation "
-              + ("none" if figure is None else f"{figure} bits per subpixel")
-              + ("" if start is None or figure is None else f" ({start} at the start)"),
-              flush=True)
+            figure, start = summary.get("val_integer_bpsp"), summary.get("val_start_bpsp")
+            identity = load_model(Path(export)).sha256.hex()[:16]
+            print(f"{export}: model {Path(export).stem} ({identity}), {summary['steps']} "
+                  f"steps in {summary['minutes']} min, validation "
+                  + ("none" if figure is None else f"{figure} bits per subpixel")
+                  + ("" if start is None or figure is None else f" ({start} at the start)"),
+                  flush=True)
+    except RowcastError as exc:
+        raise SystemExit(str(exc)) from None
 
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: Tiles) -> float:
@@ -681,7 +686,7 @@ def export_checkpoint(run: Path, dest: Path, name: str) -> dict:
 
     net, meta = load_checkpoint(run)
     if not net.quant:
-        raise SystemExit(f"{run}: the run has not reached quantisation-aware training")
+        raise DataError(f"{run}: the run has not reached quantisation-aware training")
     cfg = saved_config(meta)
     _, _, held = load_pools(cfg)
     history = meta["state"]["history"]

@@ -328,21 +328,18 @@ def _run_training(job: Job, folder: Path, crop: int, log: Log, adapting: bool = 
     `adapting`, the biases alone at ADAPT_LR (`compress --adapt`)."""
     from rowcast import train as trainer
 
-    try:
-        sizes = (trainer.PRESETS[job.preset] if job.start is None
-                 else {k: v for k, v in trainer.resumed_sizes(job.start).items()
-                       if k in ("hidden", "left", "depth", "width")})
-        cfg = trainer.Config(
-            data=str(folder / "train"), out=str(folder / "run"), minutes=job.minutes,
-            crop=crop, lr=(ADAPT_LR if adapting else trainer.Config.lr if job.start is None
-                           else FINE_TUNE_LR),
-            held_out=str(folder / "held"), threads=os.cpu_count() or 1, device=job.device,
-            resume=job.start, patience=STOP_PATIENCE if job.stop_early else 0,
-            biases_only=adapting, **sizes)
-        trainer.train(cfg, log=log)
-        return trainer.load_checkpoint(folder / "run")
-    except SystemExit as exc:  # train.py's own refusals, each one line
-        raise DataError(str(exc.code)) from None
+    sizes = (trainer.PRESETS[job.preset] if job.start is None
+             else {k: v for k, v in trainer.resumed_sizes(job.start).items()
+                   if k in ("hidden", "left", "depth", "width")})
+    cfg = trainer.Config(
+        data=str(folder / "train"), out=str(folder / "run"), minutes=job.minutes,
+        crop=crop, lr=(ADAPT_LR if adapting else trainer.Config.lr if job.start is None
+                       else FINE_TUNE_LR),
+        held_out=str(folder / "held"), threads=os.cpu_count() or 1, device=job.device,
+        resume=job.start, patience=STOP_PATIENCE if job.stop_early else 0,
+        biases_only=adapting, **sizes)
+    trainer.train(cfg, log=log)
+    return trainer.load_checkpoint(folder / "run")
 
 
 def run(job: Job, log: Log = lambda line: None) -> Report:
@@ -353,10 +350,7 @@ def run(job: Job, log: Log = lambda line: None) -> Report:
     api.check_destination(job.output, job.force)
     from rowcast.train import training_device
 
-    try:
-        training_device(job.device)
-    except SystemExit as exc:
-        raise UsageError(str(exc.code)) from None
+    training_device(job.device)
     start_model = load_start(job.start)
     chosen = select(job.inputs, job.held_out)
     with tempfile.TemporaryDirectory(prefix="rowcast-train-") as tmp:
