@@ -169,8 +169,12 @@ def _images(folder: Path) -> list[Path]:
 def read_image(path: Path) -> np.ndarray:
     """An image file as training sees it: (H, W) uint8 for gray, (H, W, 4) RGBA otherwise.
     16-bit files are read at full depth (`imagefile`) and become the 8-bit plane the
-    predictor codes for them (`deep.coarse`), never values clipped at 255."""
-    fmt = BY_NAME.get(imagefile.sniff(path).format)
+    predictor codes for them (`deep.coarse`), never values clipped at 255; a file the
+    archive refuses (floating-point, CMYK, ...) is a DataError naming it and why."""
+    sniffed = imagefile.sniff(path)
+    if sniffed.action == "refused":
+        raise DataError(f"{path}: {sniffed.reason}")
+    fmt = BY_NAME.get(sniffed.format)
     if fmt is not None and fmt.bits == 16:
         colour = list(fmt.groups[0])
         planes = deep.coarse(imagefile.read_picture(path).values[colour])
