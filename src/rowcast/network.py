@@ -160,7 +160,12 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
 
     Returns mu4 (B,3,H,W) in quarter pixels (base prediction + correction + channel
     coupling to the earlier channels' residuals), and ls8 (B,3,H,W); with a second
-    component also mu4b, ls8b and the first component's weight w (0..64).
+    component also mu4b, ls8b and the first component's weight w (0..64). And `excess`:
+    how far the means (in pixels) and log-scale levels lay outside the family's range
+    before they were clamped, on average; zero inside it. The clamps pass no gradient, so
+    a network that early in training drives its scales to the top of the range and its
+    means below 0 (its base prediction far off, as on raw colour-filter-array frames)
+    would stay there: training adds a little of `excess` to its loss to bring them back.
     """
     r = round_ste if quant else (lambda t: t)
     components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
@@ -174,9 +179,13 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
     zero = torch.zeros_like(shift_g)
     shift = torch.stack([zero, shift_g, shift_b], 1)
 
+    excess = []
+
     def component(mu_raw: torch.Tensor, ls_raw: torch.Tensor) -> tuple:
-        mu = torch.clamp(mu_raw + fam.MU_SCALE * base + shift, fam.MU_LO, fam.MU_HI)
-        return mu, torch.clamp(ls_raw, fam.LS_LO, fam.LS_HI)
+        mu = mu_raw + fam.MU_SCALE * base + shift
+        excess.append((F.relu(fam.MU_LO - mu) + F.relu(mu - fam.MU_HI)).mean() / fam.MU_SCALE
+                      + (F.relu(fam.LS_LO - ls_raw) + F.relu(ls_raw - fam.LS_HI)).mean())
+        return torch.clamp(mu, fam.MU_LO, fam.MU_HI), torch.clamp(ls_raw, fam.LS_LO, fam.LS_HI)
 
     mu4, ls8 = component(q[:, 0 : 2 * fam.CHANNELS : 2], q[:, 1 : 2 * fam.CHANNELS : 2])
     params = {"mu4": mu4, "ls8": ls8}
@@ -184,27 +193,8 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
         mix = q[:, fam.OUTPUTS :]
         params["mu4b"], params["ls8b"] = component(mix[:, 0::3], mix[:, 1::3])
         params["w"] = clamp_ste(mix[:, 2::3], 0.0, float(fam.WEIGHT_ONE))
+    params["excess"] = sum(excess)
     return params
-
-
-def range_excess(y: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
-    """How far raw outputs y put the means (in pixels, before channel coupling) and log-scale
-    levels outside the family's range, on average; zero inside it. The clamps of
-    `parameters_from_output` pass no gradient, so a network that early in training drives
-    its scales to the top of the range and its means below 0 (its base prediction far off,
-    as on raw colour-filter-array frames) would stay there: training adds a little of this
-    to its loss to bring them back."""
-    components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
-    q = y * torch.tensor(fam.output_gains(components), dtype=y.dtype,
-                         device=y.device).view(1, -1, 1, 1)
-    base = fam.MU_SCALE * torch.from_numpy(fam.base_prediction(x.detach().cpu().numpy())).to(x)
-    mus, lss = [q[:, 0 : 2 * fam.CHANNELS : 2] + base], [q[:, 1 : 2 * fam.CHANNELS : 2]]
-    if components == 2:
-        mix = q[:, fam.OUTPUTS :]
-        mus, lss = [*mus, mix[:, 0::3] + base], [*lss, mix[:, 1::3]]
-    excess = sum((F.relu(fam.MU_LO - mu) + F.relu(mu - fam.MU_HI)).mean() / fam.MU_SCALE
-                 for mu in mus)
-    return excess + sum((F.relu(fam.LS_LO - ls) + F.relu(ls - fam.LS_HI)).mean() for ls in lss)
 
 
 def _bin_log_probability(mu4: torch.Tensor, ls8: torch.Tensor, x: torch.Tensor) -> torch.Tensor:

@@ -29,7 +29,6 @@ from rowcast.network import (
     QConv,
     log2_likelihood,
     parameters_from_output,
-    range_excess,
 )
 from rowcast.pixelformats import BY_NAME
 
@@ -86,7 +85,7 @@ PRESETS = {
     "small": {"width": 48, "hidden": 64, "depth": 4, "left": 3, "activity": False},
 }
 CHECKS = 10  # validation checks in a run that may stop early (at least every 5 minutes)
-RANGE_WEIGHT = 0.1  # of `range_excess` in the loss: without it a network trained from
+RANGE_WEIGHT = 0.1  # of the parameters' `excess` in the loss: without it a network trained from
 # scratch on raw colour-filter-array frames sat at 8.65 bits per subpixel for good; with it
 # 5.46 after 80 steps (small preset)
 
@@ -312,13 +311,11 @@ def validation_set(held: list[np.ndarray], size: int = 64) -> Tiles:
 
 def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | None = None):
     """Mean cross-entropy in bits per coded subpixel (a tensor, differentiable)."""
-    return mean_bits(model(x), x, model.quant, mask)
+    return mean_bits(parameters_from_output(model(x), x, model.quant), x, mask)
 
 
-def mean_bits(y: torch.Tensor, x: torch.Tensor, quant: bool,
-              mask: torch.Tensor | None = None) -> torch.Tensor:
-    """`bits_per_subpixel` from the network's raw outputs y."""
-    params = parameters_from_output(y, x, quant)
+def mean_bits(params: dict, x: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+    """`bits_per_subpixel` from the logistic parameters of `parameters_from_output`."""
     bits = -log2_likelihood(params, x)
     if mask is None:
         return bits.mean()
@@ -555,10 +552,10 @@ def train(cfg: Config, log=print) -> Predictor:
             calibrate(model, x)
             model.quant = True
             log(f"step {step}: quantisation-aware from here")
-        y = model(x)
-        loss = mean_bits(y, x, model.quant, mask)
+        params = parameters_from_output(model(x), x, model.quant)
+        loss = mean_bits(params, x, mask)
         opt.zero_grad()
-        (loss + RANGE_WEIGHT * range_excess(y, x)).backward()
+        (loss + RANGE_WEIGHT * params["excess"]).backward()
         torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
         opt.step()
         step += 1
