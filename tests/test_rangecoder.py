@@ -37,6 +37,21 @@ def decode_all(words: np.ndarray, tables: np.ndarray) -> np.ndarray:
     return out
 
 
+@numba.njit(cache=True)
+def decode_guessing(words: np.ndarray, tables: np.ndarray, guesses: np.ndarray) -> np.ndarray:
+    """`decode_all`, each symbol searched from its guess."""
+    out = np.full(len(tables), -1, np.int64)
+    state = rc.decoder_start(words)
+    cdf = np.empty(tables.shape[1] + 1, np.uint32)
+    for i in range(len(tables)):
+        rc.quantise(tables[i], cdf)
+        symbol = rc.decode_symbol(state, words, cdf, guesses[i])
+        if symbol < 0:
+            break
+        out[i] = symbol
+    return out
+
+
 def constriction_cdf(table: np.ndarray, family: bool = False) -> np.ndarray:
     """constriction's fixed-point CDF of `table`, read off its encoder: one symbol coded
     from a fresh state moves it to lower = scale * cdf[s], range = scale * p(s) (scale
@@ -254,6 +269,22 @@ def test_decodes_what_constriction_encodes(seed: int, kind: str) -> None:
         assert np.array_equal(decode_all(words, tables), symbols)
         beyond = np.concatenate([tables, tables[:200]])  # 200 more symbols from zeros
         assert np.array_equal(decode_all(words, beyond), constriction_decode(words, beyond))
+
+
+@pytest.mark.parametrize("kind", ["grid", "extreme"])
+def test_a_guess_changes_only_where_the_search_starts(kind: str) -> None:
+    """The decoder searches each symbol from a guess (the decoder passes its mean): right,
+    near, far, at either end or outside the alphabet, the symbols are the same."""
+    rng = np.random.default_rng(7)
+    n = 3000
+    tables = (grid_rows(rng, n) if kind == "grid"
+              else extreme_tables()[rng.integers(0, len(extreme_tables()), n)])
+    symbols = draw(rng, tables).astype(np.int32)
+    words = encoded(symbols, tables, True)
+    exact = symbols.astype(np.int64)
+    for guesses in (exact, exact + rng.integers(-3, 4, n), rng.integers(-5, 262, n),
+                    np.zeros(n, np.int64), np.full(n, tables.shape[1] - 1), np.full(n, -1)):
+        assert np.array_equal(decode_guessing(words, tables, guesses), symbols)
 
 
 def test_empty_and_zero_payloads() -> None:

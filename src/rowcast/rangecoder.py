@@ -107,9 +107,39 @@ def decoder_start(words: np.ndarray) -> np.ndarray:
 
 
 @_jit
-def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray) -> int:
+def _last_at_most(cdf: np.ndarray, q: int, guess: int) -> int:
+    """The last index i < len(cdf) - 1 with cdf[i] <= q (0 if none), for a non-decreasing
+    cdf: a search that gallops out from `guess` when it lies inside, so it reads the few
+    entries near a likely symbol instead of halving the whole table."""
+    low, high = 0, cdf.size - 1
+    if 0 < guess < high:
+        if cdf[guess] <= q:
+            low, step = guess, 1
+            while low + step < high and cdf[low + step] <= q:
+                low += step
+                step *= 2
+            high = min(high, low + step)
+        else:
+            high, step = guess, 1
+            while high - step > 0 and cdf[high - step] > q:
+                high -= step
+                step *= 2
+            low = max(0, high - step)
+    while high - low > 1:
+        mid = (low + high) >> 1
+        if cdf[mid] <= q:
+            low = mid
+        else:
+            high = mid
+    return low
+
+
+@_jit
+def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
+                  guess: int = -1) -> int:
     """Decode one symbol with the model `cdf` (from `quantise`, n + 1 entries), advancing
     `state` (from `decoder_start`) over `words`; past their end it reads zero words.
+    `guess`, a likely symbol, only speeds the search: the result is the same.
 
     Returns the symbol (0..n-1), or INVALID (-1), with `state` unchanged, where
     constriction raises: the point lies beyond what the model can code (invalid data);
@@ -126,14 +156,7 @@ def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray) -> int:
     if quantile >= _ONE:
         return INVALID
     q = np.int64(quantile)
-    low = 0  # the last symbol whose left end is <= q: cdf[low] <= q < cdf[high]
-    high = cdf.size - 1
-    while high - low > 1:
-        mid = (low + high) >> 1
-        if cdf[mid] <= q:
-            low = mid
-        else:
-            high = mid
+    low = _last_at_most(cdf, q, guess)
     left = np.int64(cdf[low])
     if left > q:
         return INVALID

@@ -3,11 +3,12 @@ pixel's head, parameters, tuning, feedback, frequency table and range decoding w
 return to Python.
 
 It computes exactly what `codec._decode_rows` computes, which stays the reference that the
-tests hold it against (same pixels on golden archives and random images). The row stack
-still runs once per row on numpy (`Engine.row_features`); the head runs here in integers:
-int8 weights times 0..255 activations summed in int32 (every layer's bound is far below
-2**31, checked in `Kernel.of`), requantised as the model file defines it. Tables become
-the coder's fixed-point distributions with `rangecoder.quantise`; a single component's are
+tests hold it against (same pixels on golden archives and random images). Every layer's
+products are `intkernels.dense` (uint8 activations times int8 weights, summed in int32:
+every layer's bound is far below 2**31, checked in `Kernel.of`), requantised as the model
+file defines it. The row stack runs once per row for the whole batch; the head once per
+column for the whole batch, so each product is a matrix of images. Tables become the
+coder's fixed-point distributions with `rangecoder.quantise`; a single component's are
 cached per table row, so each is built once per process.
 
 numba compiles the loop on first use and caches the machine code beside the module (or in
@@ -24,7 +25,7 @@ from numba import njit
 
 from rowcast import entropy, feedback, rangecoder
 from rowcast import family as fam
-from rowcast.intkernels import requantised
+from rowcast.intkernels import LANES, dense, dot, packed, requantised
 from rowcast.predictor import Engine
 from rowcast.tables import LEVELS, MEANS, SPAN, symbol_counts
 
@@ -58,11 +59,11 @@ class Stream:
 
 @dataclass(frozen=True)
 class Kernel:
-    """A model's head in the integers the loop takes: head 1's weights of the pixels to the
-    left (left, 3, hidden) int32, head 2's and the output layer's transposed (cout, cin)
-    int16, and each layer's bias, multiplier, shift."""
+    """A model's network in the integers the loop takes: every product is `intkernels.dense`
+    (uint8 activations, int8 weights packed for it, int32 sums)."""
 
-    left: np.ndarray
+    left: np.ndarray  # head 1's weights of the RGB of the pixels to the left, nearest first
+    lefts: int  # how many pixels to the left the head sees
     m1: np.ndarray
     s1: int
     w2: np.ndarray
@@ -73,9 +74,9 @@ class Kernel:
     b3: np.ndarray
     m3: np.ndarray
     s3: int
-    stack: tuple  # the row stack's layers: (weights (cout, 2, kw * cin) int16, bias, mult,
-    # shift) each
-    rows: np.ndarray  # head 1's weights of the row stack's features (width, hidden)
+    stack: tuple  # the row stack's layers: (packed weights of the previous row's and the
+    # current row's window (kw, cin padded to 4), outputs, kw, bias, mult, shift) each
+    rows: np.ndarray  # head 1's weights of the row stack's features, packed
     valid: np.ndarray  # head 1's bias plus the valid planes' terms, (left + 1, hidden) int64
     activity: np.ndarray | None  # head 1's weights of the activity inputs (3, hidden)
 
@@ -91,52 +92,51 @@ class Kernel:
         by_pixel = w1[width : width + 4 * left].reshape(left, 4, -1)
         valid = np.concatenate([np.zeros((1, w1.shape[1]), np.int64),
                                 np.cumsum(255 * by_pixel[:, 3], axis=0)]) + h1.bias
-        return cls(np.ascontiguousarray(by_pixel[:, :3], np.int32), h1.mult, h1.shift,
-                   np.ascontiguousarray(h2.weight[:, :, 0, 0], np.int16), h2.bias, h2.mult,
-                   h2.shift, np.ascontiguousarray(out.weight[:, :, 0, 0], np.int16), out.bias,
-                   out.mult, out.shift,
-                   tuple((np.ascontiguousarray(layer.weight.transpose(0, 2, 3, 1)
-                                               .reshape(len(layer.weight), 2, -1), np.int16),
-                          layer.bias, layer.mult, layer.shift) for layer in engine.rows),
-                   w1[:width].astype(engine._w1_rows.dtype), valid,
-                   w1[len(w1) - 3 :] if model.activity else None)
+        stack = tuple(_stack_weights(layer) for layer in engine.rows)
+        return cls(packed(by_pixel[:, :3].reshape(3 * left, -1).T), left, h1.mult, h1.shift,
+                   packed(h2.weight[:, :, 0, 0]), h2.bias, h2.mult, h2.shift,
+                   packed(out.weight[:, :, 0, 0]), out.bias, out.mult, out.shift, stack,
+                   packed(w1[:width].T), valid, w1[len(w1) - 3 :] if model.activity else None)
 
     def start(self, batch: int, width: int) -> list[np.ndarray]:
-        """Each stack layer's input rows before row 0, (B, 2, W + kw - 1, cin) int16: the
+        """Each stack layer's input rows before row 0, (B, 2, W + kw - 1, cin) uint8: the
         previous and the current row with kw // 2 zero columns either side."""
-        return [np.zeros((batch, 2, width + w.shape[2] // cin - 1, cin), np.int16)
-                for (w, *_), cin in zip(self.stack, self._inputs(), strict=True)]
-
-    def _inputs(self) -> list[int]:
-        return [4] + [len(w) for w, *_ in self.stack[:-1]]
+        inputs = [4] + [cout for _, _, cout, *_ in self.stack[:-1]]
+        return [np.zeros((batch, 2, width + kw - 1, -(-cin // 4) * 4), np.uint8)
+                for (_, _, _, kw, *_), cin in zip(self.stack, inputs, strict=True)]
 
     def row_features(self, state: list[np.ndarray], above: np.ndarray | None) -> np.ndarray:
-        """`Engine.row_features` in integers: advance the row stack by one row (`above`:
-        the last decoded row (B, 3, W) uint8, or None before row 0) and return its output
-        for the new row, (B, W, width) int16."""
-        batch, width = state[0].shape[0], state[0].shape[2] - self.stack[0][0].shape[2] // 4 + 1
-        a = np.zeros((batch, width, 4), np.int16)
+        """Advance the row stack by one row (`above`: the last decoded row (B, 3, W) uint8,
+        or None before row 0) and return its output for the new row, (B, W, width) uint8."""
+        batch, width = state[0].shape[0], state[0].shape[2] - self.stack[0][3] + 1
+        a = np.zeros((batch, width, 4), np.uint8)
         if above is not None:
             a[..., :3] = above.transpose(0, 2, 1)
             a[..., 3] = 255
-        for pair, (w, bias, mult, shift) in zip(state, self.stack, strict=True):
-            pad = (pair.shape[2] - width) // 2
+        for pair, (top, bottom, cout, kw, bias, mult, shift) in zip(state, self.stack,
+                                                                    strict=True):
             pair[:, 0] = pair[:, 1]
-            pair[:, 1, pad : pad + width] = a
-            a = np.empty((batch, width, len(w)), np.int16)
-            _stack_layer(pair.reshape(batch, 2, -1), pair.shape[3], w, bias, mult, shift, a)
+            pair[:, 1, kw // 2 : kw // 2 + width, : a.shape[2]] = a
+            a = np.empty((batch, width, cout), np.uint8)
+            _stack_layer(pair, top, bottom, bias, mult, shift, a)
         return a
 
     def head_rows(self, feats: np.ndarray, activity: np.ndarray) -> np.ndarray:
-        """Head 1's accumulators (W, B, hidden) int32 of a row, every term but the RGB of
-        the pixels to the left, from the row stack's features (B, W, width). A BLAS
-        product in the float type whose exactness the layer's bound proves (`Engine`):
-        faster here than the compiled loop's int32 (measured)."""
-        acc = (feats.transpose(1, 0, 2).astype(self.rows.dtype) @ self.rows).astype(np.int64)
-        acc += self.valid[np.minimum(np.arange(len(acc)), len(self.left))][:, None]
+        """Head 1's accumulators (B, W, hidden) int32 of a row, every term but the RGB of
+        the pixels to the left, from the row stack's features (B, W, width) uint8."""
+        terms = np.zeros((len(feats), self.valid.shape[1]), np.int64)
         if self.activity is not None:
-            acc += activity.astype(np.int64) @ self.activity
-        return acc.astype(np.int32)
+            terms += activity.astype(np.int64) @ self.activity
+        return _head_rows(feats, self.rows, self.valid, terms)
+
+
+def _stack_weights(layer) -> tuple:
+    """A row-stack layer as `Kernel.stack` holds it."""
+    cout, cin, _, kw = layer.weight.shape
+    w = np.zeros((cout, 2, kw, -(-cin // 4) * 4), np.int8)
+    w[..., :cin] = layer.weight.transpose(0, 2, 3, 1)
+    return (packed(w[:, 0].reshape(cout, -1)), packed(w[:, 1].reshape(cout, -1)), cout, kw,
+            layer.bias, layer.mult, layer.shift)
 
 
 @functools.cache
@@ -183,15 +183,20 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
     states = np.stack([s.state for s in streams])
     ends = np.cumsum([len(s.words) for s in streams])
     words = np.concatenate([s.words for s in streams] + [np.zeros(0, np.uint32)])
-    hidden = kernel.left.shape[2]
-    scratch = (np.empty((batch, hidden), np.int16), np.empty((batch, len(kernel.b2)), np.int16),
-               np.empty((batch, len(kernel.b3)), np.int64))
+    hidden, hidden2, outputs = len(kernel.m1), len(kernel.b2), len(kernel.b3)
+    scratch = (np.zeros((batch, -(-3 * kernel.lefts // 4) * 4), np.uint8),
+               np.empty((batch, -(-hidden // LANES) * LANES), np.int32),
+               np.zeros((batch, -(-hidden // 4) * 4), np.uint8),
+               np.empty((batch, -(-hidden2 // LANES) * LANES), np.int32),
+               np.zeros((batch, -(-hidden2 // 4) * 4), np.uint8),
+               np.empty((batch, -(-outputs // LANES) * LANES), np.int32),
+               np.empty((batch, outputs), np.int64))
     counts, columns, surprise, ftab, cdfs, built = _lookups()
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         feats = kernel.row_features(state, above)
         acc = kernel.head_rows(feats, fam.activity_from_sums(misses, y, width))
-        bad = _row(y, acc, img, planes, kernel.left, kernel.m1, kernel.s1, kernel.w2,
+        bad = _row(y, acc, img, planes, kernel.left, kernel.lefts, kernel.m1, kernel.s1, kernel.w2,
                    kernel.b2, kernel.m2, kernel.s2, kernel.w3, kernel.b3, kernel.m3, kernel.s3,
                    tuned, levels, origin, couplings, active, gains, biases, q, e, misses,
                    counts, columns, surprise, ftab, cdfs, built, states, words, ends, *scratch)
@@ -204,63 +209,76 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
 
 
 @njit(cache=True, nogil=True)
-def _dense(a, w, bias, mult, shift, relu, out):
-    """out[b] = the requantised a[b] @ w.T + bias: int16 products summed in int32, then a
-    separate requantising loop (kept apart, and the sums kept in int32, so that both
-    vectorise: 3x faster, measured)."""
-    acc = np.empty(w.shape[0], np.int32)
-    for b in range(a.shape[0]):
-        for j in range(w.shape[0]):
-            s = np.int32(0)
-            for k in range(w.shape[1]):
-                s += np.int32(a[b, k]) * np.int32(w[j, k])
-            acc[j] = s
-        for j in range(w.shape[0]):
-            out[b, j] = requantised(np.int64(acc[j]) + bias[j], mult[j], shift, relu)
+def _requantised_into(acc, bias, mult, shift, relu, out):
+    """out[i, j] = requantised(acc[i, j] + bias[j]) for the first len(bias) columns."""
+    for i in range(out.shape[0]):
+        for j in range(len(bias)):
+            out[i, j] = requantised(np.int64(acc[i, j]) + bias[j], mult[j], shift, relu)
 
 
 @njit(cache=True, nogil=True)
-def _stack_layer(pair, cin, w, bias, mult, shift, out):
-    """One row of a row-stack layer: out[b, x] (cout,) from the input's previous and current
-    rows `pair` (B, 2, (W + kw - 1) * cin) int16, zero columns either side, and the weights
-    w (cout, 2, kw * cin). A pixel's window is copied into one contiguous vector first:
-    then the dot products vectorise (17x faster than indexing the rows, measured)."""
-    span = w.shape[2]
-    window = np.empty(2 * span, np.int16)
-    flat = w.reshape(w.shape[0], 2 * span)
-    acc = np.empty(w.shape[0], np.int32)
-    for b in range(out.shape[0]):
-        for x in range(out.shape[1]):
-            window[:span] = pair[b, 0, x * cin : x * cin + span]
-            window[span:] = pair[b, 1, x * cin : x * cin + span]
-            for o in range(w.shape[0]):
-                s = np.int32(0)
-                for k in range(2 * span):
-                    s += np.int32(window[k]) * np.int32(flat[o, k])
-                acc[o] = s
-            for o in range(w.shape[0]):
-                out[b, x, o] = requantised(np.int64(acc[o]) + bias[o], mult[o], shift, True)
-
+def _stack_layer(pair, top, bottom, bias, mult, shift, out):
+    """One row of a row-stack layer into out (B, W, cout) uint8, from its input's previous
+    and current rows `pair` (B, 2, W + kw - 1, cin) uint8 (cin a multiple of 4) with zero
+    columns either side. A pixel's window is kw * cin contiguous bytes of each row, so its
+    products are two `dot`s, with the weights of the previous (`top`) and current row."""
+    batch, width, cout = out.shape
+    cin, length = pair.shape[3], pair.shape[2] * pair.shape[3]
+    quads = (pair.shape[2] - width + 1) * cin // 4
+    n = -(-cout // LANES) * LANES
+    rows = pair.reshape(-1)
+    acc = np.empty(batch * width * n, np.int32)
+    for j in range(0, n, 4 * LANES):
+        for b in range(batch):
+            for x in range(width):
+                at = (b * width + x) * n + j
+                dot(rows, 2 * b * length + x * cin, top, n, j, acc, at, quads, False)
+                dot(rows, (2 * b + 1) * length + x * cin, bottom, n, j, acc, at, quads, True)
+    _requantised_into(acc.reshape(batch * width, n), bias, mult, shift, True,
+                      out.reshape(batch * width, cout))
 
 
 @njit(cache=True, nogil=True)
-def _head(x, y, acc, img, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, a1, a2, raw):
-    """The raw outputs (B, outputs) of column x into `raw`."""
-    batch, hidden = acc.shape[1], acc.shape[2]
-    n = min(x, wl.shape[0])
-    h1 = np.empty(hidden, np.int32)
+def _head_rows(feats, w, valid, activity):
+    """Head 1's accumulators (B, W, hidden) int32 of a row from the row stack's features
+    (B, W, width) uint8: their products, the bias and valid planes' terms of each column
+    (`valid` by pixels to its left) and each image's activity terms (B, hidden)."""
+    batch, width, chans = feats.shape
+    hidden = valid.shape[1]
+    flat = np.zeros((batch * width, -(-chans // 4) * 4), np.uint8)
+    flat[:, :chans] = feats.reshape(batch * width, chans)
+    acc = np.empty((batch * width, -(-hidden // LANES) * LANES), np.int32)
+    dense(flat, w, acc)
+    out = np.empty((batch, width, hidden), np.int32)
     for b in range(batch):
-        h1[:] = acc[x, b]
-        for d in range(1, n + 1):
+        for x in range(width):
+            n = min(x, valid.shape[0] - 1)
+            for k in range(hidden):
+                out[b, x, k] = acc[b * width + x, k] + valid[n, k] + activity[b, k]
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _head(x, y, acc, img, wl, left, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, lefts, acc1, a1,
+          acc2, a2, acc3, raw):
+    """The raw outputs (B, outputs) of column x into `raw`. Scratch: lefts (B, 3 * left
+    padded to 4) and a1, a2 (B, hidden padded to 4) uint8; acc1, acc2, acc3 (B, outputs
+    padded to 16) int32."""
+    batch, hidden = acc.shape[0], acc.shape[2]
+    n = min(x, left)
+    lefts[:] = 0
+    for b in range(batch):
+        for d in range(n):
             for c in range(3):
-                v = np.int32(img[b, c, y, x - d])
-                if v:
-                    for k in range(hidden):
-                        h1[k] += v * wl[d - 1, c, k]
+                lefts[b, 3 * d + c] = img[b, c, y, x - 1 - d]
+    dense(lefts, wl, acc1)
+    for b in range(batch):
         for k in range(hidden):
-            a1[b, k] = requantised(np.int64(h1[k]), m1[k], s1, True)
-    _dense(a1, w2, b2, m2, s2, True, a2)
-    _dense(a2, w3, b3, m3, s3, False, raw)
+            a1[b, k] = requantised(np.int64(acc[b, x, k]) + acc1[b, k], m1[k], s1, True)
+    dense(a1, w2, acc2)
+    _requantised_into(acc2, b2, m2, s2, True, a2)
+    dense(a2, w3, acc3)
+    _requantised_into(acc3, b3, m3, s3, False, raw)
 
 
 @njit(cache=True, nogil=True)
@@ -281,9 +299,9 @@ def _single_cdf(row, counts, columns, cdfs, built, table):
 
 
 @njit(cache=True, nogil=True)
-def _row(y, acc, img, planes, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels, origin,
-         couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
-         cdfs, built, states, words, ends, a1, a2, raw):
+def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
+         origin, couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
+         cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
     """Decode row y of every image in place; returns 1 when a payload is not decodable."""
     batch, width = img.shape[0], img.shape[3]
     two = raw.shape[1] > fam.OUTPUTS
@@ -296,7 +314,8 @@ def _row(y, acc, img, planes, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned,
     cp = np.empty(3, np.int64)
     res = np.zeros(3, np.int64)
     for x in range(width):
-        _head(x, y, acc, img, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, a1, a2, raw)
+        _head(x, y, acc, img, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, lefts,
+              acc1, a1, acc2, a2, acc3, raw)
         for b in range(batch):
             for c in range(3):
                 if y == 0:
@@ -362,7 +381,8 @@ def _row(y, acc, img, planes, wl, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned,
                         rangecoder.quantise(table, mixed_cdf)
                         cdf = mixed_cdf
                 start = ends[b - 1] if b else 0
-                value = rangecoder.decode_symbol(states[b], words[start : ends[b]], cdf)
+                value = rangecoder.decode_symbol(states[b], words[start : ends[b]], cdf,
+                                                 _clamp((mu + 2) >> 2, 0, 255))
                 if value < 0:
                     return 1
                 img[b, c, y, x] = value
