@@ -120,7 +120,7 @@ def rowcast_cli(images: list[np.ndarray], tmp: Path, threads: int) -> dict:
 
 def rowcast_in_process(engine: Engine, images: list[np.ndarray], threads: int) -> dict:
     """The commands' coding without start-up or files: `entrycodec.encode_pictures` and
-    `decode_values` (batches of 32, tiles for large pictures) on `threads` processes, and
+    `decode_values` (in the commands' batches, tiles for large pictures) on `threads` processes, and
     the decoding again on one, checked."""
     pictures = [Picture(im, "RGB") for im in images]
     workers.set_threads(threads)
@@ -133,7 +133,7 @@ def rowcast_in_process(engine: Engine, images: list[np.ndarray], threads: int) -
     for key, count in (("decode", threads), ("decode_one_thread", 1)):
         workers.set_threads(count)
         cpu, start = _cpu(), time.perf_counter()
-        decoded = entrycodec.decode_values(engine, wanted, batch=32)
+        decoded = entrycodec.decode_values(engine, wanted)
         out[key] = (time.perf_counter() - start, _cpu() - cpu)
         assert all(np.array_equal(d, im) for d, im in zip(decoded, images, strict=True))
     workers.set_threads(threads)

@@ -259,12 +259,24 @@ def test_untuned_tuned_and_adaptive_images_decode_together(default_engine, rgb64
 
 
 def test_reference_kernels_agree_with_fast_kernels(default_engine, rgb64):
-    """The int64 reference path (the fallback when the load-time self-test fails) computes
-    exactly what the fast float kernels compute."""
-    images = np.stack(rgb64[:2])[:, :, :20, :24]
-    reference = Engine(default_engine.model)
+    """The encoder's int8 kernels (the default), the float BLAS kernels (for models whose
+    sums could pass int32) and the int64 reference (the fallback when the load-time
+    self-test fails) compute the same outputs: on photos, on noise at odd sizes, on
+    single rows and columns, and on white (the largest inputs)."""
+    rng = np.random.default_rng(5)
+    batches = [np.stack(rgb64[:2])[:, :, :20, :24],
+               rng.integers(0, 256, (3, 3, 7, 13), dtype=np.uint8),
+               rng.integers(0, 256, (2, 3, 1, 9), dtype=np.uint8),
+               rng.integers(0, 256, (2, 3, 9, 1), dtype=np.uint8),
+               np.full((1, 3, 5, 5), 255, np.uint8)]
+    floats, reference = Engine(default_engine.model), Engine(default_engine.model)
+    floats.int8 = reference.int8 = False
     reference.conv = conv_reference
-    assert np.array_equal(default_engine.parallel(images), reference.parallel(images))
+    assert default_engine.int8
+    for images in batches:
+        int8 = default_engine.parallel(images)
+        assert np.array_equal(int8, floats.parallel(images))
+        assert np.array_equal(int8, reference.parallel(images))
 
 
 def test_gray_images_are_coded_as_one_plane(default_engine, gray64):

@@ -38,7 +38,7 @@ from rowcast.pixelformats import BY_NAME
 from rowcast.predictor import Engine
 from rowcast.quantize import IntModel, ModelError, bundled_model, load_model, model_from_bytes
 
-DEFAULT_BATCH = 32
+DEFAULT_BATCH = entrycodec.BATCH
 GROUP_IMAGES = 32  # images read and coded together while compressing
 GROUP_PIXELS = 1 << 22  # ... or at most about this many pixels
 STRIPPED = "metadata stripped (--strip-metadata)"

@@ -25,14 +25,12 @@ def requantised(acc: np.int64, mult: np.int64, shift: int, relu: bool) -> np.int
 
 
 @njit(cache=True, nogil=True)
-def requantise_into(acc, mult, shift, relu, out):
-    """out[i, c] = requantised(acc[i, c]) for accumulators (N, C), bias included, held
-    exactly in a float or integer array, into a float32 array: one pass instead of numpy's
-    five."""
-    for i in range(acc.shape[0]):
-        for c in range(acc.shape[1]):
-            out[i, c] = requantised(np.int64(acc[i, c]), mult[c], shift, relu)
-    return out
+def requantise_into(acc, bias, mult, shift, relu, out):
+    """out[i, j] = requantised(acc[i, j] + bias[j]) for accumulators (N, C >= len(bias)),
+    into the first len(bias) columns of out (N, ...): one pass instead of numpy's five."""
+    for i in range(out.shape[0]):
+        for j in range(len(bias)):
+            out[i, j] = requantised(np.int64(acc[i, j]) + bias[j], mult[j], shift, relu)
 
 
 # Matrix products of uint8 activations and int8 weights, summed exactly in int32 (a layer's
@@ -179,3 +177,36 @@ def dense(a, w, out):
     for j in range(0, n, 4 * LANES):  # a block's weights stay in cache over the rows
         for i in range(m):
             dot(flat_a, i * k, w, n, j, flat_out, i * n + j, k // 4, False)
+
+
+def conv_weights(weight: np.ndarray) -> np.ndarray:
+    """A layer's weights (cout, cin, kh, kw) as `conv_rows` takes them: for each kernel row,
+    the (cout, kw * cin) weights of its kw pixels, cin padded to a multiple of 4, `packed`;
+    (kh, packed length) int8."""
+    cout, cin, kh, kw = weight.shape
+    w = np.zeros((cout, kh, kw, -(-cin // 4) * 4), np.int8)
+    w[..., :cin] = weight.transpose(0, 2, 3, 1)
+    return np.stack([packed(w[:, i].reshape(cout, -1)) for i in range(kh)])
+
+
+@njit(cache=True, nogil=True)
+def conv_rows(p, w, bias, mult, shift, relu, out):
+    """A layer's requantised outputs out (B, H, W, cout) from its padded input p (B, H + kh -
+    1, W + kw - 1, cin) uint8, cin a multiple of 4, and its `conv_weights` w. An output's
+    window is kw * cin contiguous bytes of each of kh input rows, so its products are kh
+    `dot`s that read the input in place; a row's accumulators are requantised as it ends."""
+    batch, height, width, cout = out.shape
+    kh, cin = w.shape[0], p.shape[3]
+    quads = (p.shape[2] - width + 1) * cin // 4
+    n = -(-cout // LANES) * LANES
+    length = p.shape[2] * cin
+    flat = p.reshape(-1)
+    acc = np.empty(width * n, np.int32)
+    for b in range(batch):
+        for y in range(height):
+            for j in range(0, n, 4 * LANES):  # a block's weights stay in cache over the row
+                for x in range(width):
+                    for i in range(kh):
+                        at = (b * p.shape[1] + y + i) * length + x * cin
+                        dot(flat, at, w[i], n, j, acc, x * n + j, quads, i > 0)
+            requantise_into(acc.reshape(width, n), bias, mult, shift, relu, out[b, y])

@@ -21,6 +21,7 @@ from rowcast import family as fam
 from rowcast.quantize import EXACT_F32, IntLayer, IntModel
 
 HEAD_PIXELS = 2048  # pixels per band of the encoder's head: its activations stay in cache
+INT32_SAFE = 1 << 31  # a layer whose bound reaches this cannot sum in int32
 
 
 def _dtype(layer: IntLayer) -> type:
@@ -129,6 +130,8 @@ class Engine:
         self.rows = model.layers[: model.depth]
         self.head1, self.head2, self.out = model.layers[model.depth :]
         self.conv = conv_fast if self_test(model) else conv_reference
+        # the encoder's kernels: int8 products summed in int32 where every bound allows
+        self.int8 = all(layer.bound < INT32_SAFE for layer in model.layers)
         # The decoder folds each head layer's requantisation into its weights: with
         # s = mult / 2**shift, (acc + bias) * s + 1/2 = sum(a * w * s) + (bias * s + 1/2),
         # exact in float64 because every term and partial sum is a multiple of 2**-shift
@@ -155,33 +158,57 @@ class Engine:
 
     # -- encoder: everything at once -------------------------------------------------------
     def parallel(self, x: np.ndarray) -> np.ndarray:
-        """Raw integer outputs (B, H, W, OUTPUTS) int64 for images x (B, 3, H, W) uint8.
-        Requantised by the compiled kernel (`intkernels`): 1.2-1.4x the numpy pass."""
-        from rowcast.intkernels import requantise_into  # numba: only when coding
-
-        def layer_out(a: np.ndarray, layer: IntLayer) -> np.ndarray:
-            acc = self.conv(a, layer)
-            out = np.empty(acc.shape, np.float32)
-            requantise_into(acc.reshape(-1, acc.shape[-1]), layer.mult, layer.shift,
-                            layer.relu, out.reshape(-1, acc.shape[-1]))
-            return out
-
+        """Raw integer outputs (B, H, W, OUTPUTS) int64 for images x (B, 3, H, W) uint8: the
+        int8 kernels (`intkernels`) where every layer's sums fit int32, else `conv`."""
+        if self.int8:
+            return self._parallel_int8(x)
         t = x.transpose(0, 2, 3, 1).astype(np.float32)
         a = row_stack_input(t)
         for layer in self.rows:
-            a = layer_out(a, layer)
+            a = requantise(self.conv(a, layer), layer).astype(np.float32)
+        head_in = [a, left_window(t, self.left)]
+        if self.model.activity:
+            head_in.append(activity_planes(t))
+        h = np.concatenate(head_in, -1)
+        for layer in (self.head1, self.head2, self.out):
+            h = requantise(self.conv(h, layer), layer).astype(np.float32)
+        return h.astype(np.int64)
+
+    def _parallel_int8(self, x: np.ndarray) -> np.ndarray:
+        """`parallel` on uint8 activations: each row-stack layer one `conv_rows` over its
+        input padded in place, the head a band of rows at a time (its activations stay in
+        cache)."""
+        from rowcast.intkernels import conv_rows, conv_weights  # numba: only when coding
+
+        b, _, h, w = x.shape
+        t = x.transpose(0, 2, 3, 1)
+        a = with_valid(t)
+        for i, layer in enumerate(self.rows):  # the first reads row y - 1 at row y
+            kw, cin = layer.weight.shape[3], layer.weight.shape[1]
+            p = np.zeros((b, h + 1, w + kw - 1, -(-cin // 4) * 4), np.uint8)
+            p[:, 2 if i == 0 else 1 :, kw // 2 : kw // 2 + w, :cin] = a[:, : h - 1 if i == 0 else h]
+            a = np.empty((b, h, w, len(layer.weight)), np.uint8)
+            conv_rows(p, conv_weights(layer.weight), layer.bias, layer.mult, layer.shift, True,
+                      a)
         head_in = [a, left_window(t, self.left)]
         if self.model.activity:
             head_in.append(activity_planes(t))
         joined = np.concatenate(head_in, -1)
-        rows = max(1, HEAD_PIXELS // (x.shape[0] * x.shape[3]))
-        outs = []
-        for y in range(0, x.shape[2], rows):  # the head is per pixel: bands of rows
-            h = joined[:, y : y + rows]
-            for layer in (self.head1, self.head2, self.out):
-                h = layer_out(h, layer)
-            outs.append(h)
-        return np.concatenate(outs, 1).astype(np.int64)
+        head = [(layer, conv_weights(layer.weight)) for layer in (self.head1, self.head2)]
+        last = conv_weights(self.out.weight)
+        rows = max(1, HEAD_PIXELS // (b * w))
+        out = []
+        for y in range(0, h, rows):  # the head is per pixel: bands of rows
+            band = joined[:, y : y + rows]
+            u = np.zeros((*band.shape[:3], -(-band.shape[3] // 4) * 4), np.uint8)
+            u[..., : band.shape[3]] = band
+            for layer, weights in head:
+                v = np.zeros((*band.shape[:3], -(-len(layer.weight) // 4) * 4), np.uint8)
+                conv_rows(u, weights, layer.bias, layer.mult, layer.shift, True, v)
+                u = v
+            out.append(np.empty((*band.shape[:3], len(self.out.weight)), np.int64))
+            conv_rows(u, last, self.out.bias, self.out.mult, self.out.shift, False, out[-1])
+        return np.concatenate(out, 1)
 
     # -- decoder: a row at a time, then a pixel at a time ------------------------------------
     def start(self, batch: int, width: int) -> list[np.ndarray]:

@@ -25,7 +25,15 @@ from numba import njit
 
 from rowcast import entropy, feedback, rangecoder
 from rowcast import family as fam
-from rowcast.intkernels import LANES, dense, dot, packed, requantised
+from rowcast.intkernels import (
+    LANES,
+    conv_rows,
+    conv_weights,
+    dense,
+    packed,
+    requantise_into,
+    requantised,
+)
 from rowcast.predictor import Engine
 from rowcast.tables import LEVELS, MEANS, SPAN, symbol_counts
 
@@ -74,8 +82,7 @@ class Kernel:
     b3: np.ndarray
     m3: np.ndarray
     s3: int
-    stack: tuple  # the row stack's layers: (packed weights of the previous row's and the
-    # current row's window (kw, cin padded to 4), outputs, kw, bias, mult, shift) each
+    stack: tuple  # the row stack's layers: (`conv_weights`, outputs, kw, bias, mult, shift)
     rows: np.ndarray  # head 1's weights of the row stack's features, packed
     valid: np.ndarray  # head 1's bias plus the valid planes' terms, (left + 1, hidden) int64
     activity: np.ndarray | None  # head 1's weights of the activity inputs (3, hidden)
@@ -92,7 +99,8 @@ class Kernel:
         by_pixel = w1[width : width + 4 * left].reshape(left, 4, -1)
         valid = np.concatenate([np.zeros((1, w1.shape[1]), np.int64),
                                 np.cumsum(255 * by_pixel[:, 3], axis=0)]) + h1.bias
-        stack = tuple(_stack_weights(layer) for layer in engine.rows)
+        stack = tuple((conv_weights(layer.weight), len(layer.weight), layer.weight.shape[3],
+                       layer.bias, layer.mult, layer.shift) for layer in engine.rows)
         return cls(packed(by_pixel[:, :3].reshape(3 * left, -1).T), left, h1.mult, h1.shift,
                    packed(h2.weight[:, :, 0, 0]), h2.bias, h2.mult, h2.shift,
                    packed(out.weight[:, :, 0, 0]), out.bias, out.mult, out.shift, stack,
@@ -101,24 +109,24 @@ class Kernel:
     def start(self, batch: int, width: int) -> list[np.ndarray]:
         """Each stack layer's input rows before row 0, (B, 2, W + kw - 1, cin) uint8: the
         previous and the current row with kw // 2 zero columns either side."""
-        inputs = [4] + [cout for _, _, cout, *_ in self.stack[:-1]]
+        inputs = [4] + [cout for _, cout, *_ in self.stack[:-1]]
         return [np.zeros((batch, 2, width + kw - 1, -(-cin // 4) * 4), np.uint8)
-                for (_, _, _, kw, *_), cin in zip(self.stack, inputs, strict=True)]
+                for (_, _, kw, *_), cin in zip(self.stack, inputs, strict=True)]
 
     def row_features(self, state: list[np.ndarray], above: np.ndarray | None) -> np.ndarray:
         """Advance the row stack by one row (`above`: the last decoded row (B, 3, W) uint8,
         or None before row 0) and return its output for the new row, (B, W, width) uint8."""
-        batch, width = state[0].shape[0], state[0].shape[2] - self.stack[0][3] + 1
+        batch, width = state[0].shape[0], state[0].shape[2] - self.stack[0][2] + 1
         a = np.zeros((batch, width, 4), np.uint8)
         if above is not None:
             a[..., :3] = above.transpose(0, 2, 1)
             a[..., 3] = 255
-        for pair, (top, bottom, cout, kw, bias, mult, shift) in zip(state, self.stack,
-                                                                    strict=True):
+        for pair, (w, cout, kw, bias, mult, shift) in zip(state, self.stack, strict=True):
             pair[:, 0] = pair[:, 1]
             pair[:, 1, kw // 2 : kw // 2 + width, : a.shape[2]] = a
-            a = np.empty((batch, width, cout), np.uint8)
-            _stack_layer(pair, top, bottom, bias, mult, shift, a)
+            a = np.empty((batch, 1, width, cout), np.uint8)
+            conv_rows(pair, w, bias, mult, shift, True, a)
+            a = a[:, 0]
         return a
 
     def head_rows(self, feats: np.ndarray, activity: np.ndarray) -> np.ndarray:
@@ -128,15 +136,6 @@ class Kernel:
         if self.activity is not None:
             terms += activity.astype(np.int64) @ self.activity
         return _head_rows(feats, self.rows, self.valid, terms)
-
-
-def _stack_weights(layer) -> tuple:
-    """A row-stack layer as `Kernel.stack` holds it."""
-    cout, cin, _, kw = layer.weight.shape
-    w = np.zeros((cout, 2, kw, -(-cin // 4) * 4), np.int8)
-    w[..., :cin] = layer.weight.transpose(0, 2, 3, 1)
-    return (packed(w[:, 0].reshape(cout, -1)), packed(w[:, 1].reshape(cout, -1)), cout, kw,
-            layer.bias, layer.mult, layer.shift)
 
 
 @functools.cache
@@ -209,36 +208,6 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
 
 
 @njit(cache=True, nogil=True)
-def _requantised_into(acc, bias, mult, shift, relu, out):
-    """out[i, j] = requantised(acc[i, j] + bias[j]) for the first len(bias) columns."""
-    for i in range(out.shape[0]):
-        for j in range(len(bias)):
-            out[i, j] = requantised(np.int64(acc[i, j]) + bias[j], mult[j], shift, relu)
-
-
-@njit(cache=True, nogil=True)
-def _stack_layer(pair, top, bottom, bias, mult, shift, out):
-    """One row of a row-stack layer into out (B, W, cout) uint8, from its input's previous
-    and current rows `pair` (B, 2, W + kw - 1, cin) uint8 (cin a multiple of 4) with zero
-    columns either side. A pixel's window is kw * cin contiguous bytes of each row, so its
-    products are two `dot`s, with the weights of the previous (`top`) and current row."""
-    batch, width, cout = out.shape
-    cin, length = pair.shape[3], pair.shape[2] * pair.shape[3]
-    quads = (pair.shape[2] - width + 1) * cin // 4
-    n = -(-cout // LANES) * LANES
-    rows = pair.reshape(-1)
-    acc = np.empty(batch * width * n, np.int32)
-    for j in range(0, n, 4 * LANES):
-        for b in range(batch):
-            for x in range(width):
-                at = (b * width + x) * n + j
-                dot(rows, 2 * b * length + x * cin, top, n, j, acc, at, quads, False)
-                dot(rows, (2 * b + 1) * length + x * cin, bottom, n, j, acc, at, quads, True)
-    _requantised_into(acc.reshape(batch * width, n), bias, mult, shift, True,
-                      out.reshape(batch * width, cout))
-
-
-@njit(cache=True, nogil=True)
 def _head_rows(feats, w, valid, activity):
     """Head 1's accumulators (B, W, hidden) int32 of a row from the row stack's features
     (B, W, width) uint8: their products, the bias and valid planes' terms of each column
@@ -276,9 +245,9 @@ def _head(x, y, acc, img, wl, left, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, left
         for k in range(hidden):
             a1[b, k] = requantised(np.int64(acc[b, x, k]) + acc1[b, k], m1[k], s1, True)
     dense(a1, w2, acc2)
-    _requantised_into(acc2, b2, m2, s2, True, a2)
+    requantise_into(acc2, b2, m2, s2, True, a2)
     dense(a2, w3, acc3)
-    _requantised_into(acc3, b3, m3, s3, False, raw)
+    requantise_into(acc3, b3, m3, s3, False, raw)
 
 
 @njit(cache=True, nogil=True)
