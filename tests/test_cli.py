@@ -165,6 +165,17 @@ def test_compress_takes_every_file_by_relative_path(made: Made) -> None:
     assert {e.path: e.kind for e in entries} == SOURCES
 
 
+def test_compress_thorough_writes_an_archive_that_verifies(made: Made, tmp_path: Path) -> None:
+    """`--thorough` (the second tuning search) gives an archive whose every file verifies
+    against the originals, no larger than the default's beyond its rounding."""
+    archive = tmp_path / "thorough.rca"
+    done = run("compress", made.photos, made.lone, "-o", archive, "--model", TINY, "--thorough")
+    assert done.exit_code == 0, done.stderr
+    checked = run("verify", archive, "--against", made.originals, "--model", TINY)
+    assert checked.exit_code == 0, checked.stdout + checked.stderr
+    assert archive.stat().st_size <= made.archive.stat().st_size + 8
+
+
 def test_compress_prints_a_summary_and_nothing_on_stderr(made: Made, tmp_path: Path) -> None:
     """Success prints the summary on stdout: images coded, files kept as bytes with the
     reason; stderr stays empty (no progress debris)."""

@@ -39,7 +39,7 @@ from rowcast.predictor import Engine
 from rowcast.quantize import IntModel, ModelError, bundled_model, load_model, model_from_bytes
 
 DEFAULT_BATCH = entrycodec.BATCH
-GROUP_IMAGES = 32  # images read and coded together while compressing
+GROUP_IMAGES = 128  # images read and coded together while compressing
 GROUP_PIXELS = 1 << 22  # ... or at most about this many pixels
 STRIPPED = "metadata stripped (--strip-metadata)"
 UNWRITABLE = "an image that no container rowcast writes holds exactly; kept byte for byte"
@@ -242,7 +242,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
              force: bool = False, progress: Progress = None, exclude: Sequence[str] = (),
              strip_metadata: bool = False, leave_out_refused: bool = False,
              embed_model: bool = False, adapt_minutes: float | None = None,
-             log: Callable[[str], None] = lambda line: None) -> Summary:
+             thorough: bool = False, log: Callable[[str], None] = lambda line: None
+             ) -> Summary:
     """Compress every file under the inputs into one archive at `dest` (atomic).
 
     Images are coded (`entrycodec`), other files kept as bytes; files matching `exclude`
@@ -256,7 +257,8 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
     torch; `log` gets its lines), code every image with both models, and keep the adapted
     one, packed into the archive, only when payloads plus model come out smaller; else
     the archive is written again with the starting model. `Summary.adaptation` says which
-    and by how many bytes.
+    and by how many bytes. `thorough` searches each image's tuning twice (about 0.25%
+    smaller, 30% slower: `codec.tuning_of`).
     """
     dest = Path(dest)
     check_destination(dest, force)
@@ -307,13 +309,13 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                 group.append((f, *plan))
                 pixels += picture.width * picture.height
                 if len(group) >= GROUP_IMAGES or pixels >= GROUP_PIXELS:
-                    yield from _coded(engine, group, strip_metadata, rows, progress,
+                    yield from _coded(engine, group, strip_metadata, rows, progress, thorough,
                                       None if engine is base else base, payloads)
                     group, pixels = [], 0
                 continue
             if progress:
                 progress(1)
-        yield from _coded(engine, group, strip_metadata, rows, progress,
+        yield from _coded(engine, group, strip_metadata, rows, progress, thorough,
                           None if engine is base else base, payloads)
 
     ident = identity(net, embed_model)
@@ -372,16 +374,16 @@ def _adapted(found: list[Found], model: Path | str | None, minutes: float,
 
 
 def _coded(engine: Engine, group: list[tuple[Found, str, Picture]], stripped: bool,
-           rows: list[dict], progress: Progress, start: Engine | None = None,
+           rows: list[dict], progress: Progress, thorough: bool, start: Engine | None = None,
            payloads: dict | None = None) -> Iterator[Entry]:
     """Archive entries of a group of pictures, coded together, in order; each is restored
     under its name and picture from `imagefile.restored`. With `start`, the pictures are
     also coded with that engine and both payloads' bytes summed into `payloads`."""
     if not group:
         return
-    coded = entrycodec.encode_pictures(engine, [p for _, _, p in group])
+    coded = entrycodec.encode_pictures(engine, [p for _, _, p in group], thorough=thorough)
     if start is not None:
-        other = entrycodec.encode_pictures(start, [p for _, _, p in group])
+        other = entrycodec.encode_pictures(start, [p for _, _, p in group], thorough=thorough)
         payloads["used"] += sum(len(c.payload) for c in coded)
         payloads["start"] += sum(len(c.payload) for c in other)
     for (f, restore, picture), enc in zip(group, coded, strict=True):
