@@ -1,6 +1,6 @@
 """Size and speed of rowcast against conventional lossless codecs, on held-out thumbnails.
 
-    python benchmarks/bench.py [--model FILE] [--threads 2] [--batch 32]
+    python benchmarks/bench.py [--model FILE] [--threads 2] [--batch 128]
 
 Images: 64-px thumbnails of the photographs in scikit-image's wheel (never used in training):
 8 RGB photos x 4 crops = 32 RGB thumbnails, and 6 gray photos. Every codec runs in this
@@ -26,7 +26,7 @@ import typer
 from PIL import Image
 
 import rowcast
-from rowcast import codec, workers
+from rowcast import codec, entrycodec, workers
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
@@ -175,7 +175,7 @@ def _floor_ratio(figures: dict) -> float:
     return figures["payload_bpsp"] / (figures["cross_entropy_bpsp"] + figures["tuning_bpsp"])
 
 
-def main(model: Path | None = None, threads: int = 2, batch: int = 32) -> None:
+def main(model: Path | None = None, threads: int = 2, batch: int = entrycodec.BATCH) -> None:
     """Run everything, print the figures, write RESULTS.md and results.json."""
     workers.set_threads(threads)
     memory = MemoryPeak()

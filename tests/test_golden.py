@@ -82,12 +82,11 @@ def test_legacy_payloads_still_encode_to_the_committed_bytes(archive, model, ver
                                                              methods):
     """Today's encoder, in the payload layout of the archive's format, gives every coded
     entry's payload byte for byte: the integer arithmetic, tables and tuning search have not
-    moved. (Format 4's first archive came from 0.4.0's encoder, which chose differently;
-    the others searched their tuning twice, as `thorough` does since rowcast 0.11.)"""
+    moved. (Format 4's first archive came from 0.4.0's encoder, which chose differently.)"""
     engine = Engine(load_model(model))
     for entry in read_index(GOLDEN / archive)[1]:
         (coded,) = codec.encode_batch(engine, [committed(entry.path)], richest,
-                                      layout=LAYOUTS[version], thorough=True)
+                                      layout=LAYOUTS[version])
         assert coded.method == entry.method
         assert coded.payload == read_payload(GOLDEN / archive, entry)
 
@@ -194,14 +193,13 @@ def test_the_format_7_golden_archive_decodes_to_the_committed_files():
 
 def test_format_7_payloads_and_extras_still_encode_to_the_committed_bytes():
     """Today's reader and encoder give every image entry's payload and extras byte for
-    byte: the pieces, the 16-bit split, the fine code and the extras layout have not moved
-    (the golden searched its tuning twice, as `thorough` does since rowcast 0.11)."""
+    byte: the pieces, the 16-bit split, the fine code and the extras layout have not moved."""
     engine = Engine(load_model(TINY))
     for entry in read_index(FORMAT7)[1]:
         if entry.kind != "image":
             continue
         picture = read_picture(FORMATS / entry.path)
-        (encoded,) = encode_pictures(engine, [picture], thorough=True)
+        (encoded,) = encode_pictures(engine, [picture])
         assert (encoded.method, encoded.parts) == (entry.method, entry.parts), entry.path
         assert encoded.payload == read_payload(FORMAT7, entry), entry.path
         assert pack_picture_extras(picture) == read_extras(FORMAT7, entry), entry.path

@@ -113,10 +113,10 @@ def _piece(method: str, data: bytes) -> bytes:
 
 
 def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
-                    workers: int | None = None, thorough: bool = False) -> list[Encoded]:
+                    workers: int | None = None, quick: bool = False) -> list[Encoded]:
     """The shortest payload of each picture (`Encoded`); same-sized predictor pieces of
     all the pictures are coded together. `engine` None codes without the predictor;
-    `thorough`: `codec.tuning_of`'s second search."""
+    `quick`: without `codec.tuning_of`'s second search."""
     groups = [_groups(p) for p in pictures]
     buckets: dict[tuple, list[tuple[int, int, int, int]]] = defaultdict(list)
     for i, picture_groups in enumerate(groups):
@@ -130,7 +130,7 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
         for members in buckets.values():
             images = [tiles(groups[i][g][k][1])[t] for i, g, k, t in members]
             coded.update(zip(members, codec.encode_batch(engine, images, "adaptive",
-                                                         workers=workers, thorough=thorough),
+                                                         workers=workers, quick=quick),
                              strict=True))
     results = []
     for i, picture in enumerate(pictures):
