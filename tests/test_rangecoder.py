@@ -196,13 +196,18 @@ def test_quantise_computes_in_the_tables_float_type() -> None:
 
 def test_a_negligible_last_count_can_get_no_probability_as_in_constriction() -> None:
     """float32 products can round up to the whole free weight: the last symbol then starts
-    at 2**24. constriction builds that model too, cannot encode the symbol (KeyError), and
-    no decoder ever decodes it; quantise accepts the table."""
+    at 2**24. constriction builds that model too, cannot encode the symbol (KeyError), nor
+    can the compiled encoder (ValueError, nothing written), and no decoder ever decodes
+    it; quantise accepts the table."""
     table = np.array([8158.5356, 27.385002, 8.5740428e-09], np.float32)
     assert quantised(table).tolist() == [0, 16721089, 1 << 24, 1 << 24]
     assert np.array_equal(quantised(table), constriction_cdf(table))
     with pytest.raises(KeyError):
-        entropy.encoder().encode(2, entropy.model_of(table))
+        Queue.RangeEncoder().encode(2, entropy.model_of(table))
+    ours = rc.Encoder()
+    with pytest.raises(ValueError):
+        ours.encode(np.array([2]), entropy.FAMILY, table[None])
+    assert ours.is_empty()
     rng = np.random.default_rng(9)
     words = rng.integers(0, 1 << 32, 40, dtype=np.uint64).astype(np.uint32)
     tables = np.tile(table, (500, 1))
@@ -238,8 +243,9 @@ def test_quantise_accepts_negative_counts_as_constriction_does() -> None:
 
 
 def encoded(symbols: np.ndarray, tables: np.ndarray, trimmed: bool) -> np.ndarray:
-    """constriction's code of the symbols, through rowcast's writer, as decoder words."""
-    coder = entropy.encoder()
+    """constriction's code of the symbols, ended as rowcast's writer ends it (`finish`),
+    as decoder words."""
+    coder = Queue.RangeEncoder()
     entropy.encode(coder, symbols, tables)
     return rc.payload_words(entropy.finish(coder, trimmed=trimmed), trimmed=trimmed)
 
@@ -285,6 +291,95 @@ def test_a_guess_changes_only_where_the_search_starts(kind: str) -> None:
     for guesses in (exact, exact + rng.integers(-3, 4, n), rng.integers(-5, 262, n),
                     np.zeros(n, np.int64), np.full(n, tables.shape[1] - 1), np.full(n, -1)):
         assert np.array_equal(decode_guessing(words, tables, guesses), symbols)
+
+
+@pytest.mark.parametrize("kind", ["grid", "mixture", "extreme", "priors", "float64"])
+def test_the_encoder_writes_constrictions_words(kind: str) -> None:
+    """rowcast's compiled encoder against constriction's RangeEncoder, for 0 to 3000
+    symbols: the same complete code (`get_compressed`), the same position and interval
+    (`pos`, which `finish` reads to end the code), the same emptiness. The symbols are
+    coded one at a time, so the test sees the encoder hold words back while its interval
+    straddles a carry, and that happens."""
+    rng = np.random.default_rng(len(kind))
+    held = 0
+    for n in (0, 1, 2, 7, 300, 3000):
+        if kind == "grid":
+            tables = grid_rows(rng, max(n, 2))[:n]
+        elif kind in ("mixture", "float64"):
+            tables = mixtures(rng, max(n, 2))[:n]
+            tables = tables.astype(np.float64) if kind == "float64" else tables
+        elif kind == "extreme":
+            tables = extreme_tables()[rng.integers(0, len(extreme_tables()), n)]
+        else:
+            tables = tuning.prior_tables("offsets")[rng.integers(0, 8, n)]
+        symbols = draw(rng, tables).astype(np.int32) if n else np.zeros(0, np.int32)
+        theirs, ours = Queue.RangeEncoder(), rc.Encoder()
+        entropy.encode(theirs, symbols, tables)
+        for i in range(n):
+            ours.encode(symbols[i : i + 1], entropy.FAMILY, tables[i : i + 1])
+            held += bool(ours.state[rc.E_HELD])
+        assert np.array_equal(ours.get_compressed(), theirs.get_compressed())
+        assert ours.pos() == (theirs.pos()[0], tuple(theirs.pos()[1]))
+        assert ours.is_empty() == theirs.is_empty()
+        for trimmed in (True, False):
+            assert entropy.finish(ours, trimmed) == entropy.finish(theirs, trimmed)
+    assert held > 0
+
+
+def test_the_encoder_writes_constrictions_words_in_its_rare_situations() -> None:
+    """Two paths random data seldom takes, against constriction: (1) symbols chosen to keep
+    the interval straddling a carry, so that the encoder holds many words back, then random
+    ones that settle it, cycle after cycle; (2) an interval under 2**33 wide at the end, for
+    which the code ends in an extra zero word (4 symbols of 255 equally likely ones)."""
+    uniform = np.ones((1, 256), np.float32)
+    rng = np.random.default_rng(3)
+    ours, theirs, most, sealed_held = rc.Encoder(), Queue.RangeEncoder(), 0, set()
+    for step in range(480):
+        pick = int(rng.integers(0, 256))
+        if step % 40 >= 20:  # hold: the symbol that leaves the most words held (of those,
+            trials = []  # alternately the highest and the lowest interval)
+            for symbol in range(0, 256, 5):
+                trial = rc.Encoder()
+                trial.state, trial.words = ours.state.copy(), ours.words.copy()
+                trial.encode(np.array([symbol]), entropy.FAMILY, uniform)
+                lower = int(trial.state[rc.E_LOWER])
+                trials.append((int(trial.state[rc.E_HELD]), lower if step % 80 < 40 else -lower,
+                               symbol))
+            pick = max(trials)[2]
+        ours.encode(np.array([pick]), entropy.FAMILY, uniform)
+        entropy.encode(theirs, np.array([pick], np.int32), uniform)
+        most = max(most, int(ours.state[rc.E_HELD]))
+        if ours.state[rc.E_HELD] and step % 5 == 0:  # ended while words are held
+            assert np.array_equal(ours.get_compressed(), theirs.get_compressed())
+            lower = int(ours.state[rc.E_LOWER])
+            sealed_held.add(lower + (1 << 32) - 1 >= 1 << 64)  # the ending point wraps
+    assert most >= 3 and sealed_held == {False, True}
+    assert np.array_equal(ours.get_compressed(), theirs.get_compressed())
+    narrow = 0
+    for symbols in rng.integers(0, 255, (8, 4)):
+        ours, theirs = rc.Encoder(), Queue.RangeEncoder()
+        tables = np.ones((4, 255), np.float32)
+        ours.encode(symbols, entropy.FAMILY, tables)
+        entropy.encode(theirs, symbols.astype(np.int32), tables)
+        lower, width = ours.pos()[1]
+        narrow += (lower + width) % (1 << 64) >> 32 == (lower + (1 << 32) - 1) % (1 << 64) >> 32
+        assert np.array_equal(ours.get_compressed(), theirs.get_compressed())
+    assert narrow >= 4
+
+
+def test_shared_row_models_code_as_their_tables_do() -> None:
+    """`tablecdfs.encode_rows` (the encoder's models of `all_tables()` rows, built once)
+    writes what the tables themselves give the encoder: the same words."""
+    from rowcast import tablecdfs
+
+    rng = np.random.default_rng(11)
+    rows = rng.integers(0, len(tab.all_tables()), 2000)
+    tables = tab.all_tables()[rows]
+    symbols = draw(rng, tables).astype(np.int64)
+    by_tables, by_rows = rc.Encoder(), rc.Encoder()
+    by_tables.encode(symbols, entropy.FAMILY, tables)
+    tablecdfs.encode_rows(by_rows, symbols, rows)
+    assert np.array_equal(by_rows.get_compressed(), by_tables.get_compressed())
 
 
 def test_empty_and_zero_payloads() -> None:

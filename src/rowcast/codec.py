@@ -21,6 +21,7 @@ from rowcast.predictor import Engine
 from rowcast.tables import (
     LENGTH_ONE,
     LEVELS,
+    MEANS,
     TABLE_TOTAL,
     all_tables,
     code_lengths,
@@ -257,6 +258,14 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
     the image's tuning, or None; near: the band's `Feedback`, needed when the tuning has
     feedback gains.
     """
+    symbols, first, second, weight = image_rows(out, rgb, base, planes, tune, near)
+    return symbols, _tables(first, second, weight)
+
+
+def image_rows(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
+               tune: Tune | None = None, near: Feedback | None = None) -> tuple:
+    """`image_tables` as rows of `all_tables()`: (symbols, the first component's rows, the
+    second's or None, the weights or None), each (N*P,) in coding order."""
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base, tune)
@@ -272,7 +281,7 @@ def image_tables(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int
     first = np.stack([r[0] for r in rows], axis=1).reshape(-1)  # pixel-major, then plane
     second = None if p.weight is None else np.stack([r[1] for r in rows], 1).reshape(-1)
     weight = None if p.weight is None else p.weight[:, :planes].reshape(-1)
-    return known[:, :planes].reshape(-1), _tables(first, second, weight)
+    return known[:, :planes].reshape(-1), first, second, weight
 
 
 def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
@@ -490,16 +499,25 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
                 layout: str, quick: bool) -> Coded:
     base = base_prediction(rgb)
     chosen, near = tuning_of(out, rgb, base, planes, method, layout, quick)
-    coder, bits = tuned_coder(chosen, planes, layout), 0.0
-    rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
-    for y in range(0, out.shape[0], rows_per_chunk):
-        band = slice(y, y + rows_per_chunk)
-        pixels = slice(y * out.shape[1], (y + rows_per_chunk) * out.shape[1])
-        symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes, chosen,
-                                       None if near is None else near.band(pixels))
-        entropy.encode(coder, symbols, tables)
-        total = TABLE_TOTAL if out.shape[-1] == fam.OUTPUTS else None
-        bits += entropy.cross_entropy_bits(symbols, tables, total=total)
+    coder = tuned_coder(chosen, planes, layout)
+    if out.shape[-1] == fam.OUTPUTS:  # one component: the coder's shared models of the rows
+        from rowcast import tablecdfs  # numba: only when coding
+
+        symbols, rows, _, _ = image_rows(out, rgb, base, planes, chosen, near)
+        tablecdfs.encode_rows(coder, symbols, rows)
+        counts = symbol_counts()[count_index(rows % MEANS + fam.MU_LO,
+                                             rows // MEANS + fam.LS_LO, symbol_columns(symbols))]
+        bits = float(-np.log2(counts / TABLE_TOTAL).sum())
+    else:
+        bits = 0.0
+        rows_per_chunk = max(1, CHUNK // (out.shape[1] * planes))
+        for y in range(0, out.shape[0], rows_per_chunk):
+            band = slice(y, y + rows_per_chunk)
+            pixels = slice(y * out.shape[1], (y + rows_per_chunk) * out.shape[1])
+            symbols, tables = image_tables(out[band], rgb[:, band], base[:, band], planes,
+                                           chosen, None if near is None else near.band(pixels))
+            entropy.encode(coder, symbols, tables)
+            bits += entropy.cross_entropy_bits(symbols, tables)
     payload = payload_of(coder, chosen, planes, layout)
     if chosen is None:
         return Coded(payload, bits)

@@ -17,9 +17,12 @@ class PayloadError(Exception):
     """A payload that cannot be decoded."""
 
 
-def encoder() -> constriction.stream.queue.RangeEncoder:
-    """A fresh range encoder; feed it with `encode` (any number of calls)."""
-    return constriction.stream.queue.RangeEncoder()
+def encoder():
+    """A fresh range encoder; feed it with `encode` (any number of calls): the compiled
+    one (`rangecoder.Encoder`), which writes constriction's bytes."""
+    from rowcast.rangecoder import Encoder  # numba: only when coding
+
+    return Encoder()
 
 
 def encode(coder, symbols: np.ndarray, tables: np.ndarray) -> None:

@@ -187,6 +187,136 @@ def decode_counts(state: np.ndarray, words: np.ndarray, counts: np.ndarray,
     return decode_symbol(state, words, scratch_cdf)
 
 
+# The encoder: the same coder's writing side, byte for byte. Its state (uint64): `lower`,
+# `range`, the words written, and while the interval straddles a carry ("inverted": lower
+# + range wraps past 2**64) how many words are held back and the first of them.
+E_LOWER, E_RANGE, E_WRITTEN, E_HELD, E_FIRST = 0, 1, 2, 3, 4
+_STATE_ONE = np.uint64(0xFFFFFFFFFFFFFFFF)
+_WORD_MASK = np.uint64(_U32_MAX)
+
+
+@_jit
+def encoder_start() -> np.ndarray:
+    """A fresh encoder state: the whole 64-bit interval, nothing written."""
+    state = np.zeros(5, np.uint64)
+    state[E_RANGE] = _STATE_ONE
+    return state
+
+
+@_jit
+def _put(words: np.ndarray, n: int, word) -> np.ndarray:
+    """words with words[n] = word, grown (doubled) when full."""
+    if n >= words.size:
+        grown = np.empty(max(64, 2 * words.size), np.uint32)
+        grown[: words.size] = words
+        words = grown
+    words[n] = np.uint32(word)
+    return words
+
+
+@_jit
+def encode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray, symbol: int):
+    """Encode `symbol` with the model `cdf` (from `quantise`) as constriction's range
+    encoder does; returns (the words, perhaps grown, True), or (words, False) with the
+    state unchanged where constriction refuses (the symbol has no probability)."""
+    left = np.uint64(cdf[symbol])
+    if np.uint64(cdf[symbol + 1]) <= left:
+        return words, False
+    lower, range_ = state[E_LOWER], state[E_RANGE]
+    n, held = np.int64(state[E_WRITTEN]), np.int64(state[E_HELD])
+    scale = range_ >> _PRECISION
+    range_ = scale * (np.uint64(cdf[symbol + 1]) - left)
+    moved = lower + scale * left  # wraps modulo 2**64
+    if held and moved + range_ > moved:  # the carry is settled: release the held words
+        if moved < lower:
+            first, rest = (state[E_FIRST] + np.uint64(1)) & _WORD_MASK, np.uint64(0)
+        else:
+            first, rest = state[E_FIRST], _WORD_MASK
+        words = _put(words, n, first)
+        n += 1
+        for _ in range(1, held):
+            words = _put(words, n, rest)
+            n += 1
+        held = 0
+    lower = moved
+    if range_ < _WORD_ONE:
+        range_ <<= _SHIFT
+        top = lower >> _SHIFT
+        lower <<= _SHIFT
+        if held:
+            held += 1
+        elif lower + range_ > lower:
+            words = _put(words, n, top)
+            n += 1
+        else:
+            held = 1
+            state[E_FIRST] = top
+    state[E_LOWER], state[E_RANGE] = lower, range_
+    state[E_WRITTEN], state[E_HELD] = np.uint64(n), np.uint64(held)
+    return words, True
+
+
+@_jit
+def encode_tables(state: np.ndarray, words: np.ndarray, symbols: np.ndarray,
+                  tables: np.ndarray):
+    """Encode symbols (N,) each with its count table (N, n) as `quantise` models it;
+    returns (the words, the index of the first symbol refused, or -1)."""
+    cdf = np.empty(tables.shape[1] + 1, np.uint32)
+    for i in range(len(symbols)):
+        if not quantise(tables[i], cdf):
+            return words, i
+        words, ok = encode_symbol(state, words, cdf, symbols[i])
+        if not ok:
+            return words, i
+    return words, -1
+
+
+def sealed(state: np.ndarray, words: np.ndarray) -> np.ndarray:
+    """The complete code of an encoder (constriction's `get_compressed`): the words
+    written, the held ones, then a word inside the interval (and a zero word when the
+    interval's top has the same first word); nothing at all before the first symbol."""
+    lower, range_, n, held, first = (int(v) for v in state)
+    if range_ == (1 << 64) - 1:
+        return words[:n].copy()
+    point = (lower + (1 << 32) - 1) & ((1 << 64) - 1)
+    tail = []
+    if held:
+        tail = ([(first + 1) & _U32_MAX] + [0] * (held - 1) if point < lower
+                else [first] + [_U32_MAX] * (held - 1))
+    tail.append(point >> 32)
+    if ((lower + range_) & ((1 << 64) - 1)) >> 32 == point >> 32:
+        tail.append(0)
+    return np.concatenate([words[:n], np.array(tail, np.uint32)])
+
+
+class Encoder:
+    """A range encoder with constriction's `RangeEncoder` interface as `entropy` uses it
+    (`encode`, `get_compressed`, `pos`, `is_empty`), compiled, and `encode_cdfs` for
+    models built once and shared (`quantise`'d rows)."""
+
+    def __init__(self) -> None:
+        self.state = encoder_start()
+        self.words = np.empty(64, np.uint32)
+
+    def encode(self, symbols: np.ndarray, _family, tables: np.ndarray) -> None:
+        """Symbols (N,) each coded with its count table (N, n)."""
+        self.words, bad = encode_tables(self.state, self.words, np.asarray(symbols, np.int64),
+                                        np.ascontiguousarray(tables))
+        if bad >= 0:
+            raise ValueError(f"symbol {bad} has no probability under its table")
+
+    def get_compressed(self) -> np.ndarray:
+        return sealed(self.state, self.words)
+
+    def pos(self) -> tuple[int, tuple[int, int]]:
+        """(words written and held, (lower, range)), as constriction's `pos`."""
+        return (int(self.state[E_WRITTEN] + self.state[E_HELD]),
+                (int(self.state[E_LOWER]), int(self.state[E_RANGE])))
+
+    def is_empty(self) -> bool:
+        return int(self.state[E_RANGE]) == (1 << 64) - 1 and not self.state[E_WRITTEN]
+
+
 def payload_words(payload: bytes, trimmed: bool = True) -> np.ndarray:
     """The uint32 words of a payload written by `rowcast.entropy.finish`: big-endian with
     its zero bytes trimmed (`trimmed`, padded back here) or whole little-endian words."""

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from rowcast import entropy, feedback, rangecoder
+from rowcast import entropy, feedback, rangecoder, tablecdfs
 from rowcast import family as fam
 from rowcast.intkernels import (
     LANES,
@@ -35,7 +35,8 @@ from rowcast.intkernels import (
     requantised,
 )
 from rowcast.predictor import Engine
-from rowcast.tables import LEVELS, MEANS, SPAN, symbol_counts
+from rowcast.tablecdfs import row_cdf
+from rowcast.tables import MEANS, SPAN
 
 INT32_SAFE = 1 << 31  # a layer whose bound reaches this is left to the reference decoder
 
@@ -148,16 +149,12 @@ def kernel_of(engine: Engine) -> Kernel | None:
 def _lookups() -> tuple[np.ndarray, ...]:
     """(symbol_counts, each symbol's column in it, surprise table, feedback tables of 2, 3
     and 4 terms padded to SUMS, the cache of quantised tables, which rows it holds)."""
-    symbols = np.arange(256)
-    kind = (symbols > 0).astype(np.int64) + (symbols == 255)
-    columns = (kind * LEVELS - fam.LS_LO) * SPAN + fam.MU_HI + 4 * symbols
+    counts, columns, cdfs, built = tablecdfs.cache()
     sums = 4 * feedback.Q_MAX + 1
     ftab = np.stack([np.pad(feedback.feedback_table(c + 2),
                             (0, sums - len(feedback.feedback_table(c + 2))), mode="edge")
                      for c in range(fam.CHANNELS)])
-    cdfs = np.zeros((LEVELS * MEANS, 257), np.uint32)  # pages are touched only as used
-    return (symbol_counts(), columns, feedback.surprise_table(), ftab, cdfs,
-            np.zeros(LEVELS * MEANS, np.bool_))
+    return counts, columns, feedback.surprise_table(), ftab, cdfs, built
 
 
 def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, planes: int,
@@ -256,18 +253,6 @@ def _clamp(v, lo, hi):
 
 
 @njit(cache=True, nogil=True)
-def _single_cdf(row, counts, columns, cdfs, built, table):
-    """The quantised table of `all_tables()` row `row`, built on first use."""
-    if not built[row]:
-        level, mu4 = row // MEANS + fam.LS_LO, row % MEANS + fam.MU_LO
-        for s in range(256):
-            table[s] = counts[columns[s] + level * SPAN - mu4]
-        rangecoder.quantise(table, cdfs[row])
-        built[row] = True
-    return cdfs[row]
-
-
-@njit(cache=True, nogil=True)
 def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
          origin, couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
          cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
@@ -323,7 +308,7 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                 mu = _clamp(ahead + shift, fam.MU_LO, fam.MU_HI)
                 row = (_clamp(moved, fam.LS_LO, fam.LS_HI) - fam.LS_LO) * MEANS + mu - fam.MU_LO
                 if not two:
-                    cdf = _single_cdf(row, counts, columns, cdfs, built, table)
+                    cdf = row_cdf(row, counts, columns, cdfs, built, table)
                 else:
                     k = fam.OUTPUTS + 3 * c
                     weight = _clamp(raw[b, k + 2], 0, fam.WEIGHT_ONE)
@@ -336,9 +321,9 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     row_b = ((_clamp(level_b, fam.LS_LO, fam.LS_HI) - fam.LS_LO) * MEANS
                              + mu_b - fam.MU_LO)
                     if weight == fam.WEIGHT_ONE:
-                        cdf = _single_cdf(row, counts, columns, cdfs, built, table)
+                        cdf = row_cdf(row, counts, columns, cdfs, built, table)
                     elif weight == 0:
-                        cdf = _single_cdf(row_b, counts, columns, cdfs, built, table)
+                        cdf = row_cdf(row_b, counts, columns, cdfs, built, table)
                     else:
                         la, ma = row // MEANS + fam.LS_LO, row % MEANS + fam.MU_LO
                         lb, mb = row_b // MEANS + fam.LS_LO, row_b % MEANS + fam.MU_LO
