@@ -162,3 +162,29 @@ def test_the_priors_give_every_value_a_count_and_price_fields_by_them():
     want += np.log2(couplings.sum(axis=1) / couplings[:, 8]).sum()
     assert abs(fields_length(coded) / 2**16 - want) < 1e-3
     assert (np.log2(offsets.sum(axis=1) / offsets[:, 8])[1:6] < 4).all()
+
+
+def test_compiled_plane_lengths_are_the_table_lookup() -> None:
+    """The tuning search's compiled lengths equal `symbol_lengths()` at `count_index` of
+    the moved and clamped levels and means, for every shape of move the search uses
+    (none, one per subpixel, one per candidate, one per candidate and subpixel), with
+    moves far past both ends of the family's grid."""
+    from rowcast.tables import count_index, symbol_columns, symbol_lengths
+    from rowcast.tuningkernel import plane_lengths
+
+    rng = np.random.default_rng(2)
+    n, k = 500, 7
+    symbols = rng.integers(0, 256, n)
+    columns = symbol_columns(symbols)
+    levels = rng.integers(fam.LS_LO, fam.LS_HI + 1, n)
+    means = 4 * symbols + rng.integers(-30, 31, n)
+    moves = [0, rng.integers(-40, 41, n), rng.integers(-40, 41, (k, 1)),
+             rng.integers(-60, 61, (k, n))]
+    for d in moves:
+        for m in moves:
+            want = symbol_lengths()[count_index(
+                np.clip(means + np.asarray(m), fam.MU_LO, fam.MU_HI),
+                np.clip(levels + np.asarray(d), fam.LS_LO, fam.LS_HI), columns)]
+            got = plane_lengths(symbol_lengths(), columns, levels, means, d, m)
+            assert got.shape == np.broadcast_shapes(np.shape(d), np.shape(m), (n,))
+            assert np.array_equal(got, want)

@@ -332,6 +332,8 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     30% more encoding time)."""
     if method == "model":
         return None, None
+    from rowcast.tuningkernel import plane_lengths  # numba: only when coding
+
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
     raw = out.reshape(-1, out.shape[-1])
@@ -346,9 +348,11 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         """Code lengths in 1/LENGTH_ONE bit (exact integers: `code_lengths`) of plane c's
         subpixels (N,), or (K, N) with the levels moved by each of K offsets d (K, 1) or
         moves (K, N), or the means by moves m."""
+        if p.weight is None:
+            return plane_lengths(lengths, columns[c], p.ls8[:, c],
+                                 p.means[:, c] + coupling_move(p.couplings, c, residuals),
+                                 0 if d is None else d, m)
         first, second = plane_grid(p, c, residuals, d, m)
-        if second is None:
-            return lengths[count_index(*first, columns[c])]
         w = p.weight[:, c]  # w x a + (64 - w) x b: a pure table's count times 64 too
         return mixed_lengths[w * counts[count_index(*first, columns[c])]
                              + (fam.WEIGHT_ONE - w) * counts[count_index(*second, columns[c])]]

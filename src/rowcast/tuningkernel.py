@@ -1,0 +1,49 @@
+"""The encoder's tuning search, compiled: the code lengths of one plane's subpixels under
+candidate moves of their levels and means, in one pass over them.
+
+`codec.tuning_of` asks for these lengths about a hundred times an image (every candidate
+offset, coupling and gain). numpy computed each from half a dozen temporary arrays of the
+candidates' shape; this loop reads each subpixel once per candidate. The lengths are the
+same integers (`tables.symbol_lengths` looked up at `tables.count_index`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from rowcast import family as fam
+from rowcast.tables import SPAN
+
+
+@njit(cache=True, nogil=True)
+def _lengths(lengths, columns, levels, means, d, m, out):
+    """out[k, i] for d (1 or K, 1 or N) and m (1 or K, 1 or N): each row or column of one
+    stands for all."""
+    dk, dn, mk, mn = d.shape[0] > 1, d.shape[1] > 1, m.shape[0] > 1, m.shape[1] > 1
+    for k in range(out.shape[0]):
+        for i in range(out.shape[1]):
+            level = levels[i] + d[k if dk else 0, i if dn else 0]
+            mu = means[i] + m[k if mk else 0, i if mn else 0]
+            level = min(max(level, fam.LS_LO), fam.LS_HI)
+            mu = min(max(mu, fam.MU_LO), fam.MU_HI)
+            out[k, i] = lengths[columns[i] + level * SPAN - mu]
+
+
+def _matrix(v: np.ndarray | int, n: int) -> np.ndarray:
+    """A move as (rows, columns) int64: a scalar (1, 1), (N,) (1, N), (K, 1) or (K, N)."""
+    a = np.asarray(v, np.int64)
+    return a.reshape(1, -1) if a.ndim < 2 else a
+
+
+def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
+                  means: np.ndarray, d: np.ndarray | int, m: np.ndarray | int) -> np.ndarray:
+    """`symbol_lengths()` at the count index of each subpixel (its `symbol_columns`, level
+    and mean (N,)) with the level moved by d and the mean by m, each clamped to the
+    family's grid; d and m are scalars, (N,), (K, 1) or (K, N): (N,) or (K, N) out."""
+    n = len(columns)
+    d2, m2 = _matrix(d, n), _matrix(m, n)
+    rows = max(d2.shape[0], m2.shape[0])
+    out = np.empty((rows, n), np.int64)
+    _lengths(lengths, columns, levels, means, d2, m2, out)
+    return out if np.ndim(d) == 2 or np.ndim(m) == 2 else out[0]
