@@ -75,14 +75,17 @@ def test_coupling_choice_never_costs_more_and_finds_a_planted_optimum():
     planted best offsets, and the bits it reports saved are the true difference."""
     best = np.array([8, -12, 20])
 
-    def cost(k, offsets):  # plane G depends on coupling 0, plane B on couplings 1 and 2
+    def cost(k, offsets, candidates):  # plane G depends on coupling 0, B on 1 and 2
+        trial = np.repeat(offsets[:, None], len(candidates), 1)
+        trial[k] = candidates
         if k == 0:
-            return float((offsets[0] - best[0]) ** 2)
-        return float((offsets[1] - best[1]) ** 2 + (offsets[2] - best[2]) ** 2)
+            return (trial[0] - best[0]) ** 2
+        return (trial[1] - best[1]) ** 2 + (trial[2] - best[2]) ** 2
 
     chosen, saved = choose_couplings(cost)
     assert chosen.tolist() == best.tolist()
-    assert saved == cost(0, np.zeros(3)) + cost(1, np.zeros(3))
+    zero, nothing = np.zeros(1, np.int64), np.zeros(3, np.int64)
+    assert saved == cost(0, nothing, zero)[0] + cost(1, nothing, zero)[0]
 
 
 def test_bands_split_the_levels_at_the_documented_thresholds():
@@ -188,3 +191,27 @@ def test_compiled_plane_lengths_are_the_table_lookup() -> None:
             got = plane_lengths(symbol_lengths(), columns, levels, means, d, m)
             assert got.shape == np.broadcast_shapes(np.shape(d), np.shape(m), (n,))
             assert np.array_equal(got, want)
+
+
+def test_compiled_coupled_sums_are_the_plane_code_lengths() -> None:
+    """For each pair of coupling offsets, the compiled sum equals the plane's code length
+    with its means moved by the channel masks as the coder moves them (couplings clamped
+    to the family's range, (a ra + b rb + 8) >> 4, the mean clamped to the grid)."""
+    from rowcast.tables import count_index, symbol_columns, symbol_lengths
+    from rowcast.tuningkernel import coupled_sums
+
+    rng = np.random.default_rng(4)
+    n = 400
+    symbols = rng.integers(0, 256, n)
+    columns = symbol_columns(symbols)
+    levels = rng.integers(fam.LS_LO, fam.LS_HI + 1, n)
+    means = 4 * symbols + rng.integers(-30, 31, n)
+    ca, cb = (rng.integers(-fam.COUPLE_MAX, fam.COUPLE_MAX + 1, n) for _ in range(2))
+    ra, rb = (rng.integers(-255, 256, n) for _ in range(2))
+    da, db = rng.integers(-60, 61, 9), rng.integers(-60, 61, 9)
+    got = coupled_sums(symbol_lengths(), columns, levels, means, (ca, cb), (ra, rb), da, db)
+    for k in range(9):
+        a = np.clip(ca + da[k], -fam.COUPLE_MAX, fam.COUPLE_MAX)
+        b = np.clip(cb + db[k], -fam.COUPLE_MAX, fam.COUPLE_MAX)
+        mu = np.clip(means + ((a * ra + b * rb + 8) >> 4), fam.MU_LO, fam.MU_HI)
+        assert got[k] == symbol_lengths()[count_index(mu, levels, columns)].sum()

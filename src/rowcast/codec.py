@@ -332,7 +332,7 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     30% more encoding time)."""
     if method == "model":
         return None, None
-    from rowcast.tuningkernel import plane_lengths  # numba: only when coding
+    from rowcast.tuningkernel import coupled_sums, plane_lengths  # numba: only when coding
 
     known = rgb.reshape(3, -1).T.astype(np.int64)
     flat_base = base.reshape(3, -1).T
@@ -365,12 +365,28 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         tuned = pixel_params(raw, flat_base, tune)
         trial = Params(tuned.means, tuned.ls8, tuned.couplings.copy(), tuned.means_b,
                        tuned.ls8_b, tuned.weight)
+        none = np.zeros(len(raw), np.int64)
 
-        def plane_bits(k: int, moves: np.ndarray) -> float:
-            plane, columns = (1, [0]) if k == 0 else (2, [1, 2])  # what coupling_move reads
-            for j in columns:
-                trial.couplings[:, j] = tuning.couple(tuned.couplings[:, j], moves[j])
-            return float(bits(trial, plane).sum())
+        def plane_bits(k: int, offsets: np.ndarray, candidates: np.ndarray) -> np.ndarray:
+            """The bits (K,) of the plane coupling k moves, offsets[k] set to each
+            candidate."""
+            plane, moved = (1, [0]) if k == 0 else (2, [1, 2])  # what coupling_move reads
+            if tuned.weight is None:  # one compiled pass for all the candidates
+                fixed = [np.full(len(candidates), offsets[j]) for j in moved]
+                fixed[moved.index(k)] = candidates
+                pairs = [(tuned.couplings[:, j], residuals[:, j - plane + 1]) for j in moved]
+                pairs += [(none, none)] * (2 - len(pairs))
+                return coupled_sums(lengths, columns[plane], tuned.ls8[:, plane],
+                                    tuned.means[:, plane], (pairs[0][0], pairs[1][0]),
+                                    (pairs[0][1], pairs[1][1]), fixed[0],
+                                    fixed[1] if len(fixed) > 1 else np.zeros_like(fixed[0]))
+            trials = []
+            for d in candidates:
+                for j in moved:
+                    trial.couplings[:, j] = tuning.couple(tuned.couplings[:, j],
+                                                          d if j == k else offsets[j])
+                trials.append(float(bits(trial, plane).sum()))
+            return np.array(trials)
 
         couplings, more = tuning.choose_couplings(plane_bits, price("couplings"))
         tune, saved = Tune.of(offsets, couplings), saved + more

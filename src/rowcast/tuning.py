@@ -249,22 +249,21 @@ def choose(cost, levels: np.ndarray, price: np.ndarray | None = None
 
 def choose_couplings(cost, price: np.ndarray | None = None) -> tuple[np.ndarray, float]:
     """(coupling offsets (3,), bits saved by them): each offset in turn, G<-R, B<-R, B<-G
-    and B<-R again, set to the candidate of COUPLING_OFFSETS that minimises cost(k, offsets),
-    the bits of the plane that coupling k moves (G for k = 0, else B), plus with `price`
-    (3, offsets: `prices("couplings")`) the offset's own code length. G's bits depend on
-    coupling 0 alone, so the best trial of each plane's last pass is its final cost."""
+    and B<-R again, set to the candidate of COUPLING_OFFSETS that minimises the bits of the
+    plane that coupling k moves (G for k = 0, else B), plus with `price` (3, offsets:
+    `prices("couplings")`) the offset's own code length. cost(k, offsets, candidates)
+    gives those bits (K,) with offsets[k] replaced by each of K candidates. G's bits depend
+    on coupling 0 alone, so the best trial of each plane's last pass is its final cost."""
     offsets = np.zeros(3, np.int64)
-    before = [cost(0, offsets), cost(1, offsets)]
+    zero = np.zeros(1, np.int64)
+    before = [float(cost(0, offsets, zero)[0]), float(cost(1, offsets, zero)[0])]
     after = list(before)
     order = np.argsort(np.abs(COUPLING_OFFSETS), kind="stable")
-    candidates = COUPLING_OFFSETS[order]
+    candidates = COUPLING_OFFSETS[order]  # zero first: ties keep the smaller move
     for k in (0, 1, 2, 1):
-        trials = []
-        for d in candidates:  # zero first: ties keep the smaller move
-            offsets[k] = d
-            trials.append(cost(k, offsets))
-        best = int(np.argmin(trials if price is None else np.add(trials, price[k, order])))
-        offsets[k], after[min(k, 1)] = candidates[best], trials[best]
+        trials = np.asarray(cost(k, offsets, candidates), np.float64)
+        best = int(np.argmin(trials if price is None else trials + price[k, order]))
+        offsets[k], after[min(k, 1)] = candidates[best], float(trials[best])
     return offsets, before[0] + before[1] - after[0] - after[1]
 
 

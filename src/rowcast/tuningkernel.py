@@ -47,3 +47,28 @@ def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
     out = np.empty((rows, n), np.int64)
     _lengths(lengths, columns, levels, means, d2, m2, out)
     return out if np.ndim(d) == 2 or np.ndim(m) == 2 else out[0]
+
+
+@njit(cache=True, nogil=True)
+def _coupled_sums(lengths, columns, levels, means, ca, cb, ra, rb, da, db, out):
+    for k in range(len(out)):
+        total = np.int64(0)
+        for i in range(len(columns)):
+            a = min(max(ca[i] + da[k], -fam.COUPLE_MAX), fam.COUPLE_MAX)
+            b = min(max(cb[i] + db[k], -fam.COUPLE_MAX), fam.COUPLE_MAX)
+            mu = min(max(means[i] + ((a * ra[i] + b * rb[i] + 8) >> 4), fam.MU_LO), fam.MU_HI)
+            total += lengths[columns[i] + levels[i] * SPAN - mu]
+        out[k] = total
+
+
+def coupled_sums(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
+                 means: np.ndarray, couplings: tuple, residuals: tuple, da: np.ndarray,
+                 db: np.ndarray) -> np.ndarray:
+    """The plane's code length (K,) when the channel masks move its means by
+    (a ra + b rb + 8) >> 4, with the couplings a = ca + da[k], b = cb + db[k] clamped to
+    the family's range, for K pairs of offsets: `couplings` (ca, cb) and `residuals` (ra,
+    rb) are (N,) each (zeros for a plane that one coupling moves); levels are as they are."""
+    out = np.empty(len(da), np.int64)
+    _coupled_sums(lengths, columns, levels, means, *couplings, *residuals,
+                  np.asarray(da, np.int64), np.asarray(db, np.int64), out)
+    return out
