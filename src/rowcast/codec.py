@@ -407,8 +407,9 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         tune = Tune.of(tune.offsets, tune.couplings, gains, biases)
         saved += by_means + by_scales
         if not quick:
-            tune, near, more = _offsets_again(tune, near, raw, flat_base, bits, planes, shape,
-                                              p.ls8[:, :planes], values, residuals, layout)
+            tune, near, more = _offsets_again(tune, tuned, near, raw, flat_base, bits, planes,
+                                              shape, p.ls8[:, :planes], values, residuals,
+                                              layout)
             saved += more
     if saved <= header_length(tune, planes, layout):
         return None, None
@@ -446,25 +447,26 @@ def _scale_gain_cost(bits, params: Params, near: Feedback):
     return cost
 
 
-def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.ndarray,
-                   bits, planes: int, shape: tuple, levels: np.ndarray, values: np.ndarray,
-                   residuals: np.ndarray, layout: str) -> tuple[Tune, Feedback, float]:
+def _offsets_again(tune: Tune, tuned: Params, near: Feedback, raw: np.ndarray,
+                   flat_base: np.ndarray, bits, planes: int, shape: tuple, levels: np.ndarray,
+                   values: np.ndarray, residuals: np.ndarray,
+                   layout: str) -> tuple[Tune, Feedback, float]:
     """(tuning, its feedback, subpixels' code length saved): the scale offsets chosen again
     with the feedback's moves in place (the scale gains' level moves and the bias gains'
     mean moves), then the scale gains again, each kept only if the exact code length (the
     surprises measured anew; in the "streamed" layout with the fields' own) falls. The
     first offsets were chosen before any feedback, which moves levels on average, so they
-    leave bits behind."""
+    leave bits behind. `tuned` and `near` are the parameters and feedback of `tune`
+    (neither depends on the scale gains)."""
     price = _prices(layout)
 
     def own(t: Tune) -> int:  # what the fields cost where they are range-coded
         return header_length(t, planes, layout) if layout == "streamed" else 0
 
-    def total(t: Tune) -> tuple[float, Feedback]:
-        tp = pixel_params(raw, flat_base, t)
-        nb = Feedback.of(tp, values, residuals, shape, t.biases)
+    def total(t: Tune, tp: Params, nb: Feedback) -> float:
+        """The subpixels' code length under t, its parameters tp and feedback nb."""
         return sum(float(bits(tp, c, level_moves(nb.sums[:, c], c, t.gains[c]),
-                              nb.means_moved[:, c]).sum()) for c in range(planes)), nb
+                              nb.means_moved[:, c]).sum()) for c in range(planes))
 
     untuned = pixel_params(raw, flat_base)
     coupled = replace(untuned, couplings=tuning.couple(untuned.couplings, tune.couplings))
@@ -478,18 +480,18 @@ def _offsets_again(tune: Tune, near: Feedback, raw: np.ndarray, flat_base: np.nd
         return bits(coupled, c, moves - level, near.means_moved[:, c])
 
     best, best_near = tune, near
-    best_bits, _ = total(tune)
-    before = best_bits
+    best_bits = before = total(tune, tuned, near)
     offsets, _ = tuning.choose(moved_bits, levels, price("offsets"))
     trial = Tune.of(offsets, tune.couplings, tune.gains, tune.biases)
-    trial_bits, trial_near = total(trial)
+    tp = pixel_params(raw, flat_base, trial)
+    trial_near = Feedback.of(tp, values, residuals, shape, trial.biases)
+    trial_bits = total(trial, tp, trial_near)
     if trial_bits + own(trial) < best_bits + own(best):
         best, best_near, best_bits = trial, trial_near, trial_bits
-        tp = pixel_params(raw, flat_base, trial)
         gains, _ = tuning.choose_gains(_scale_gain_cost(bits, tp, trial_near), planes,
                                        price=price("gains"))
         trial = Tune.of(offsets, tune.couplings, gains, tune.biases)
-        trial_bits, trial_near = total(trial)
+        trial_bits = total(trial, tp, trial_near)
         if trial_bits + own(trial) < best_bits + own(best):
             best, best_near, best_bits = trial, trial_near, trial_bits
     return best, best_near, before - best_bits
