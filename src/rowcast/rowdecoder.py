@@ -34,11 +34,9 @@ from rowcast.intkernels import (
     requantise_into,
     requantised,
 )
-from rowcast.predictor import Engine
+from rowcast.predictor import INT32_SAFE, Engine
 from rowcast.tablecdfs import row_cdf
 from rowcast.tables import MEANS, SPAN
-
-INT32_SAFE = 1 << 31  # a layer whose bound reaches this is left to the reference decoder
 
 
 class Stream:
