@@ -302,7 +302,7 @@ def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adapti
     pixels = images[0].shape[1] * images[0].shape[2] if images else 0
     parts = [images[a:b] for a, b in shares(len(images), workers, pixels)]
     if len(parts) > 1:
-        load_compiled(engine)
+        load_compiled(engine, "encode")
     return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout,
                                                             quick), parts) for c in part]
 
@@ -574,17 +574,19 @@ def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int
     cuts = shares(len(payloads), 1 if trace is not None else workers, height * width)
     parts = [(payloads[a:b], methods[a:b]) for a, b in cuts]
     if compiled and trace is None and len(parts) > 1:
-        load_compiled(engine)
+        load_compiled(engine, "decode")
     return np.concatenate(run_split(run, parts, progress))
 
 
 @functools.cache
-def load_compiled(engine: Engine) -> None:
-    """Load (or compile) the encoder's and decoder's compiled code for an engine once, by
-    coding a 1 x 1 image, so that processes forked afterwards inherit it instead of each
-    loading it again."""
-    engine.parallel(np.zeros((1, 3, 1, 1), np.uint8))
-    _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, "streamed", True)
+def load_compiled(engine: Engine, side: str) -> None:
+    """Load (or compile) the compiled code of one side ("encode" or "decode") for an engine
+    once, by coding a 1 x 1 image, so that processes forked afterwards inherit it instead
+    of each loading it again."""
+    if side == "encode":
+        encode_batch(engine, [np.zeros((3, 1, 1), np.uint8)], workers=1)
+    else:
+        _decode(engine, [b""], ["model"], 3, 1, 1, lambda n: None, None, "streamed", True)
 
 
 @functools.cache
