@@ -171,7 +171,8 @@ def test_compiled_plane_lengths_are_the_table_lookup() -> None:
     """The tuning search's compiled lengths equal `symbol_lengths()` at `count_index` of
     the moved and clamped levels and means, for every shape of move the search uses
     (none, one per subpixel, one per candidate, one per candidate and subpixel), with
-    moves far past both ends of the family's grid."""
+    moves far past both ends of the family's grid, and with a second move of the clamped
+    levels (clamped again)."""
     from rowcast.tables import count_index, symbol_columns, symbol_lengths
     from rowcast.tuningkernel import plane_lengths
 
@@ -183,14 +184,18 @@ def test_compiled_plane_lengths_are_the_table_lookup() -> None:
     means = 4 * symbols + rng.integers(-30, 31, n)
     moves = [0, rng.integers(-40, 41, n), rng.integers(-40, 41, (k, 1)),
              rng.integers(-60, 61, (k, n))]
+    after = rng.integers(-20, 21, n)
     for d in moves:
         for m in moves:
-            want = symbol_lengths()[count_index(
-                np.clip(means + np.asarray(m), fam.MU_LO, fam.MU_HI),
-                np.clip(levels + np.asarray(d), fam.LS_LO, fam.LS_HI), columns)]
+            moved = np.clip(levels + np.asarray(d), fam.LS_LO, fam.LS_HI)
+            mu = np.clip(means + np.asarray(m), fam.MU_LO, fam.MU_HI)
+            want = symbol_lengths()[count_index(mu, moved, columns)]
             got = plane_lengths(symbol_lengths(), columns, levels, means, d, m)
             assert got.shape == np.broadcast_shapes(np.shape(d), np.shape(m), (n,))
             assert np.array_equal(got, want)
+            again = np.clip(moved + after, fam.LS_LO, fam.LS_HI)  # then a feedback move
+            got = plane_lengths(symbol_lengths(), columns, levels, means, d, m, after)
+            assert np.array_equal(got, symbol_lengths()[count_index(mu, again, columns)])
 
 
 def test_compiled_coupled_sums_are_the_plane_code_lengths() -> None:

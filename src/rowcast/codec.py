@@ -343,15 +343,19 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
     lengths, counts = symbol_lengths(), symbol_counts()
     mixed_lengths = None if raw.shape[1] == fam.OUTPUTS else code_lengths(fam.WEIGHT_ONE)
 
-    def bits(p: Params, c: int, d: np.ndarray | None = None,
-             m: np.ndarray | int = 0) -> np.ndarray:
+    def bits(p: Params, c: int, d: np.ndarray | None = None, m: np.ndarray | int = 0,
+             after: np.ndarray | None = None) -> np.ndarray:
         """Code lengths in 1/LENGTH_ONE bit (exact integers: `code_lengths`) of plane c's
         subpixels (N,), or (K, N) with the levels moved by each of K offsets d (K, 1) or
-        moves (K, N), or the means by moves m."""
+        moves (K, N), or the means by moves m; with `after` (N,) the moved levels,
+        clamped, move again by it (the feedback's moves of tuned levels)."""
         if p.weight is None:
             return plane_lengths(lengths, columns[c], p.ls8[:, c],
                                  p.means[:, c] + coupling_move(p.couplings, c, residuals),
-                                 0 if d is None else d, m)
+                                 0 if d is None else d, m, after)
+        if after is not None:
+            level = p.ls8[:, c]
+            d = tuning.apply(level + (0 if d is None else d), 0) + after - level
         first, second = plane_grid(p, c, residuals, d, m)
         w = p.weight[:, c]  # w x a + (64 - w) x b: a pure table's count times 64 too
         return mixed_lengths[w * counts[count_index(*first, columns[c])]
@@ -475,9 +479,8 @@ def _offsets_again(tune: Tune, tuned: Params, near: Feedback, raw: np.ndarray,
         """Code lengths (K, N) of plane c for K offsets d (K, 1), with the level moves of
         `near`'s surprises (a second component's level is clamped once, not twice: this
         only proposes)."""
-        level = levels[:, c]
-        moves = tuning.apply(level + d, 0) + level_moves(near.sums[:, c], c, tune.gains[c])
-        return bits(coupled, c, moves - level, near.means_moved[:, c])
+        return bits(coupled, c, d, near.means_moved[:, c],
+                    level_moves(near.sums[:, c], c, tune.gains[c]))
 
     best, best_near = tune, near
     best_bits = before = total(tune, tuned, near)

@@ -17,13 +17,14 @@ from rowcast.tables import SPAN
 
 
 @njit(cache=True, nogil=True)
-def _lengths(lengths, columns, levels, means, d, m, out):
+def _lengths(lengths, columns, levels, means, d, m, after, out):
     """out[k, i] for d (1 or K, 1 or N) and m (1 or K, 1 or N): each row or column of one
     stands for all."""
     dk, dn, mk, mn = d.shape[0] > 1, d.shape[1] > 1, m.shape[0] > 1, m.shape[1] > 1
     for k in range(out.shape[0]):
         for i in range(out.shape[1]):
-            level = levels[i] + d[k if dk else 0, i if dn else 0]
+            level = min(max(levels[i] + d[k if dk else 0, i if dn else 0], fam.LS_LO),
+                        fam.LS_HI) + after[i]
             mu = means[i] + m[k if mk else 0, i if mn else 0]
             level = min(max(level, fam.LS_LO), fam.LS_HI)
             mu = min(max(mu, fam.MU_LO), fam.MU_HI)
@@ -37,15 +38,19 @@ def _matrix(v: np.ndarray | int, n: int) -> np.ndarray:
 
 
 def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
-                  means: np.ndarray, d: np.ndarray | int, m: np.ndarray | int) -> np.ndarray:
+                  means: np.ndarray, d: np.ndarray | int, m: np.ndarray | int,
+                  after: np.ndarray | None = None) -> np.ndarray:
     """`symbol_lengths()` at the count index of each subpixel (its `symbol_columns`, level
     and mean (N,)) with the level moved by d and the mean by m, each clamped to the
-    family's grid; d and m are scalars, (N,), (K, 1) or (K, N): (N,) or (K, N) out."""
+    family's grid; d and m are scalars, (N,), (K, 1) or (K, N): (N,) or (K, N) out. With
+    `after` (N,), the clamped levels move again by it and are clamped again (a tuned
+    level's feedback move)."""
     n = len(columns)
     d2, m2 = _matrix(d, n), _matrix(m, n)
     rows = max(d2.shape[0], m2.shape[0])
     out = np.empty((rows, n), np.int64)
-    _lengths(lengths, columns, levels, means, d2, m2, out)
+    after = np.zeros(n, np.int64) if after is None else np.asarray(after, np.int64)
+    _lengths(lengths, columns, levels, means, d2, m2, after, out)
     return out if np.ndim(d) == 2 or np.ndim(m) == 2 else out[0]
 
 
