@@ -4,7 +4,7 @@ return to Python.
 
 It computes exactly what `codec._decode_rows` computes, which stays the reference that the
 tests hold it against (same pixels on golden archives and random images). Every layer's
-products are `intkernels.dense` (uint8 activations times int8 weights, summed in int32:
+products run through `intkernels` (uint8 activations times int8 weights, summed in int32:
 every layer's bound is far below 2**31, checked in `Kernel.of`), requantised as the model
 file defines it. The row stack runs once per row for the whole batch; the head once per
 column for the whole batch, so each product is a matrix of images. Tables become the
@@ -66,8 +66,8 @@ class Stream:
 
 @dataclass(frozen=True)
 class Kernel:
-    """A model's network in the integers the loop takes: every product is `intkernels.dense`
-    (uint8 activations, int8 weights packed for it, int32 sums)."""
+    """A model's network in the integers the loop takes: every product runs through
+    `intkernels` (uint8 activations, int8 weights packed for it, int32 sums)."""
 
     left: np.ndarray  # head 1's weights of the RGB of the pixels to the left, nearest first
     lefts: int  # how many pixels to the left the head sees
