@@ -1,4 +1,6 @@
-"""Compiled integer kernels shared by the encoder's parallel pass and the decoder's loop.
+"""Compiled integer kernels shared by the encoder's parallel pass and the decoder's loop:
+the network's products (`dense`, `dot`, `conv_rows`: uint8 activations times int8 weights,
+summed in int32) and its requantisation.
 
 Requantisation as the model file defines it: out = (acc * mult + 2**(shift - 1)) >> shift
 in int64 (exact: the loader checks |acc| * mult < 2**52), clamped to 0..255 after ReLU
