@@ -369,21 +369,22 @@ def tuning_of(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
         tuned = pixel_params(raw, flat_base, tune)
         trial = Params(tuned.means, tuned.ls8, tuned.couplings.copy(), tuned.means_b,
                        tuned.ls8_b, tuned.weight)
-        none = np.zeros(len(raw), np.int64)
 
         def plane_bits(k: int, offsets: np.ndarray, candidates: np.ndarray) -> np.ndarray:
             """The bits (K,) of the plane coupling k moves, offsets[k] set to each
             candidate."""
             plane, moved = (1, [0]) if k == 0 else (2, [1, 2])  # what coupling_move reads
             if tuned.weight is None:  # one compiled pass for all the candidates
-                fixed = [np.full(len(candidates), offsets[j]) for j in moved]
-                fixed[moved.index(k)] = candidates
-                pairs = [(tuned.couplings[:, j], residuals[:, j - plane + 1]) for j in moved]
-                pairs += [(none, none)] * (2 - len(pairs))
-                return coupled_sums(lengths, columns[plane], tuned.ls8[:, plane],
-                                    tuned.means[:, plane], (pairs[0][0], pairs[1][0]),
-                                    (pairs[0][1], pairs[1][1]), fixed[0],
-                                    fixed[1] if len(fixed) > 1 else np.zeros_like(fixed[0]))
+                c, r = tuned.couplings, residuals  # G moves with R; B with R and G
+                trial_offsets = [np.full(len(candidates), offsets[j]) for j in (1, 2)]
+                if k == 0:
+                    nothing = np.zeros_like(c[:, 0])  # no second coupling moves G
+                    return coupled_sums(lengths, columns[1], tuned.ls8[:, 1], tuned.means[:, 1],
+                                        (c[:, 0], nothing), (r[:, 0], nothing), candidates,
+                                        np.zeros_like(candidates))
+                trial_offsets[k - 1] = candidates
+                return coupled_sums(lengths, columns[2], tuned.ls8[:, 2], tuned.means[:, 2],
+                                    (c[:, 1], c[:, 2]), (r[:, 0], r[:, 1]), *trial_offsets)
             trials = []
             for d in candidates:
                 for j in moved:

@@ -10,6 +10,8 @@ commands that decode nothing never load it.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from llvmlite import ir
 from numba import njit, types
@@ -181,10 +183,13 @@ def dense(a, w, out):
             dot(flat_a, i * k, w, n, j, flat_out, i * n + j, k // 4, False)
 
 
-def conv_weights(weight: np.ndarray) -> np.ndarray:
-    """A layer's weights (cout, cin, kh, kw) as `conv_rows` takes them: for each kernel row,
-    the (cout, kw * cin) weights of its kw pixels, cin padded to a multiple of 4, `packed`;
-    (kh, packed length) int8."""
+@functools.cache
+def conv_weights(layer) -> np.ndarray:
+    """A model layer's weights (cout, cin, kh, kw) as `conv_rows` takes them: for each
+    kernel row, the (cout, kw * cin) weights of its kw pixels, cin padded to a multiple of
+    4, `packed`; (kh, packed length) int8, made once per layer (the encoder's passes and the
+    decoder's kernel share them)."""
+    weight = layer.weight
     cout, cin, kh, kw = weight.shape
     w = np.zeros((cout, kh, kw, -(-cin // 4) * 4), np.int8)
     w[..., :cin] = weight.transpose(0, 2, 3, 1)

@@ -182,20 +182,19 @@ class Engine:
 
         b, _, h, w = x.shape
         t = x.transpose(0, 2, 3, 1)
-        a = with_valid(t)
-        for i, layer in enumerate(self.rows):  # the first reads row y - 1 at row y
+        a = row_stack_input(t)
+        for layer in self.rows:
             kw, cin = layer.weight.shape[3], layer.weight.shape[1]
             p = np.zeros((b, h + 1, w + kw - 1, -(-cin // 4) * 4), np.uint8)
-            p[:, 2 if i == 0 else 1 :, kw // 2 : kw // 2 + w, :cin] = a[:, : h - 1 if i == 0 else h]
+            p[:, 1:, kw // 2 : kw // 2 + w, :cin] = a
             a = np.empty((b, h, w, len(layer.weight)), np.uint8)
-            conv_rows(p, conv_weights(layer.weight), layer.bias, layer.mult, layer.shift, True,
-                      a)
+            conv_rows(p, conv_weights(layer), layer.bias, layer.mult, layer.shift, True, a)
         head_in = [a, left_window(t, self.left)]
         if self.model.activity:
             head_in.append(activity_planes(t))
         joined = np.concatenate(head_in, -1)
-        head = [(layer, conv_weights(layer.weight)) for layer in (self.head1, self.head2)]
-        last = conv_weights(self.out.weight)
+        head = [(layer, conv_weights(layer)) for layer in (self.head1, self.head2)]
+        last = conv_weights(self.out)
         rows = max(1, HEAD_PIXELS // (b * w))
         out = []
         for y in range(0, h, rows):  # the head is per pixel: bands of rows

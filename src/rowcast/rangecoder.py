@@ -291,8 +291,8 @@ def sealed(state: np.ndarray, words: np.ndarray) -> np.ndarray:
 
 class Encoder:
     """A range encoder with constriction's `RangeEncoder` interface as `entropy` uses it
-    (`encode`, `get_compressed`, `pos`, `is_empty`), compiled, and `encode_cdfs` for
-    models built once and shared (`quantise`'d rows)."""
+    (`encode`, `get_compressed`, `pos`, `is_empty`), compiled; `tablecdfs.encode_rows`
+    codes into it with models built once and shared."""
 
     def __init__(self) -> None:
         self.state = encoder_start()

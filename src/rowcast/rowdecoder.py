@@ -98,11 +98,11 @@ class Kernel:
         by_pixel = w1[width : width + 4 * left].reshape(left, 4, -1)
         valid = np.concatenate([np.zeros((1, w1.shape[1]), np.int64),
                                 np.cumsum(255 * by_pixel[:, 3], axis=0)]) + h1.bias
-        stack = tuple((conv_weights(layer.weight), len(layer.weight), layer.weight.shape[3],
+        stack = tuple((conv_weights(layer), len(layer.weight), layer.weight.shape[3],
                        layer.bias, layer.mult, layer.shift) for layer in engine.rows)
         return cls(packed(by_pixel[:, :3].reshape(3 * left, -1).T), left, h1.mult, h1.shift,
-                   packed(h2.weight[:, :, 0, 0]), h2.bias, h2.mult, h2.shift,
-                   packed(out.weight[:, :, 0, 0]), out.bias, out.mult, out.shift, stack,
+                   conv_weights(h2)[0], h2.bias, h2.mult, h2.shift,
+                   conv_weights(out)[0], out.bias, out.mult, out.shift, stack,
                    packed(w1[:width].T), valid, w1[len(w1) - 3 :] if model.activity else None)
 
     def start(self, batch: int, width: int) -> list[np.ndarray]:

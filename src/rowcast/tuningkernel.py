@@ -31,7 +31,7 @@ def _lengths(lengths, columns, levels, means, d, m, after, out):
             out[k, i] = lengths[columns[i] + level * SPAN - mu]
 
 
-def _matrix(v: np.ndarray | int, n: int) -> np.ndarray:
+def _matrix(v: np.ndarray | int) -> np.ndarray:
     """A move as (rows, columns) int64: a scalar (1, 1), (N,) (1, N), (K, 1) or (K, N)."""
     a = np.asarray(v, np.int64)
     return a.reshape(1, -1) if a.ndim < 2 else a
@@ -46,7 +46,7 @@ def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
     `after` (N,), the clamped levels move again by it and are clamped again (a tuned
     level's feedback move)."""
     n = len(columns)
-    d2, m2 = _matrix(d, n), _matrix(m, n)
+    d2, m2 = _matrix(d), _matrix(m)
     rows = max(d2.shape[0], m2.shape[0])
     out = np.empty((rows, n), np.int64)
     after = np.zeros(n, np.int64) if after is None else np.asarray(after, np.int64)
