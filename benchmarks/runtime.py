@@ -24,6 +24,7 @@ Prints the figures and writes benchmarks/RUNTIME.md and benchmarks/runtime.json.
 
 from __future__ import annotations
 
+import compileall
 import json
 import multiprocessing as mp
 import os
@@ -43,7 +44,7 @@ import typer
 from PIL import Image
 
 import rowcast
-from rowcast import codec, entrycodec, workers
+from rowcast import codec, entrycodec, native, workers
 from rowcast.entrycodec import Wanted
 from rowcast.heldout import RGB_PHOTOS, data_dir
 from rowcast.picture import Picture
@@ -207,10 +208,11 @@ def startup(tmp: Path) -> dict:
 
 def throughput() -> dict:
     """The machine's matrix throughput on one core, GMAC/s: float32 BLAS on 512 x 512
-    products, and the decoder's int8 products (`intkernels.dense`) on head 2's shape for
-    a batch of 64 images."""
-    from rowcast.intkernels import dense, packed, vnni
+    products, and the decoder's int8 products (`intkernels.dense`, as `native` compiled
+    it) on head 2's shape for a batch of 64 images."""
+    from rowcast.intkernels import packed, vnni
 
+    dense = native.kernels().dense
     rng = np.random.default_rng(0)
     a = rng.integers(0, 256, (512, 512)).astype(np.float32)
     reps, start = 20, time.perf_counter()
@@ -225,7 +227,8 @@ def throughput() -> dict:
     for _ in range(reps):
         dense(x, w, out)
     dot = reps * 64 * 256 * 256 / (time.perf_counter() - start) / 1e9
-    return {"blas_float32_gmacs": blas, "int8_dot_gmacs": dot, "vnni": vnni()}
+    return {"blas_float32_gmacs": blas, "int8_dot_gmacs": dot, "vnni": vnni(),
+            "kernels": native.kind()}
 
 
 def macs_per_pixel(engine: Engine) -> int:
@@ -236,6 +239,11 @@ def macs_per_pixel(engine: Engine) -> int:
 def main(counts: str = "32,178,2000", threads: int = 2, large: bool = True) -> None:
     """Run everything, print the figures, write RUNTIME.md and runtime.json."""
     workers.set_threads(1)
+    # as an install leaves it: the package's bytecode compiled (PYTHONDONTWRITEBYTECODE or
+    # an editable install would leave every command compiling it, about 75 ms here) and the
+    # kernels prebuilt for this machine (`native`: built once, on first use)
+    compileall.compile_dir(Path(rowcast.__file__).parent, quiet=1)
+    native.kernels()
     engine = Engine(load_model())
     sets = [(f"{n} thumbnails of 64 px", thumbnails(n)) for n in map(int, counts.split(","))]
     if large:
@@ -337,7 +345,8 @@ def report(f: dict) -> str:
         f"Arithmetic: the model does {f['macs_per_pixel']:,} multiply-adds per pixel. One "
         f"core of this machine does {f['blas_float32_gmacs']:.1f} GMAC/s in float32 BLAS and "
         f"{f['int8_dot_gmacs']:.1f} GMAC/s in the decoder's int8 products (`intkernels.dense`, "
-        f"{'AVX-512 VNNI' if f.get('vnni') else 'portable vector code'}); the decoder "
+        f"{'AVX-512 VNNI' if f.get('vnni') else 'portable vector code'}, "
+        f"{f.get('kernels', 'jit')} kernels); the decoder "
         f"({best['set']}, in process) reaches {reached:.1f} GMAC/s per CPU-second, "
         f"{reached / f['int8_dot_gmacs']:.0%} of the int8 rate: the rest of its time is the "
         "work around the products (windows, requantisation, tables, range decoding).",

@@ -13,7 +13,8 @@ import sys
 import numpy as np
 import pytest
 
-from rowcast.intkernels import LANES, dense, packed, vnni
+from rowcast import native
+from rowcast.intkernels import LANES, packed, vnni
 
 SHAPES = [(1, 4, 1), (3, 20, 200), (64, 256, 256), (70, 288, 48), (5, 40, 48), (2, 258, 65),
           (9, 18, 256), (4, 256, 9), (1, 1, 16)]  # (rows, inputs, outputs)
@@ -25,7 +26,7 @@ def product(a: np.ndarray, weight: np.ndarray) -> np.ndarray:
     padded = np.zeros((m, -(-k // 4) * 4), np.uint8)
     padded[:, :k] = a
     out = np.full((m, -(-len(weight) // LANES) * LANES), 7, np.int32)
-    dense(padded, packed(weight), out)
+    native.jitted().dense(padded, packed(weight), out)
     assert not out[:, len(weight) :].any()  # padded outputs have zero weights
     return out[:, : len(weight)].astype(np.int64)
 
@@ -65,9 +66,9 @@ def test_packing_pads_with_zeros() -> None:
 PORTABLE = """
 import json, numpy as np
 import test_intkernels as t
-from rowcast.intkernels import dense
+from rowcast import native
 n = t.check_all()
-asm = "".join(dense.inspect_asm().values())
+asm = "".join(native.jitted().dense.inspect_asm().values())
 print(json.dumps({"cases": n, "vnni": "vpdpbusd" in asm}))
 """
 

@@ -14,9 +14,11 @@ import numba
 import numpy as np
 import pytest
 
-from rowcast import entropy, tuning
+from rowcast import entropy, native, tuning
 from rowcast import rangecoder as rc
 from rowcast import tables as tab
+
+native.jitted()  # the kernels as numba's JIT compiles them: the helpers below call them
 
 Queue = constriction.stream.queue
 FIRST_SCALE = (1 << 40) - 1  # a fresh coder's range (2**64 - 1) >> 24

@@ -3,16 +3,19 @@ numpy and the coder; torch is for training alone (the `train` extra)."""
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 import textwrap
 from pathlib import Path
 
 import numpy as np
+import pytest
 from conftest import TINY
 from PIL import Image
 
 import rowcast
+from rowcast import native
 
 
 def test_coding_and_decoding_import_no_torch(tmp_path: Path) -> None:
@@ -60,10 +63,14 @@ def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
         assert result.stdout.strip().splitlines()[-1] == "[]", args
 
 
-def test_a_small_decode_skips_loading_the_compiled_decoder(tmp_path: Path) -> None:
-    """Decompressing one thumbnail of up to REFERENCE_PIXELS runs the reference decoder,
-    which is done before numba would have loaded; a larger job loads the compiled loop.
-    Both restore the same pixels (checked against the files by Pillow)."""
+@pytest.mark.parametrize("kernels", ["prebuilt", "jit"])
+def test_a_small_decode_loads_no_compiler(tmp_path: Path, kernels: str) -> None:
+    """Decoding never imports numba once the kernels are prebuilt for this machine. With
+    numba's JIT instead (ROWCAST_KERNELS=jit), one thumbnail of up to REFERENCE_PIXELS runs
+    the reference decoder, done before numba would have loaded; a larger job loads it.
+    Every way restores the same pixels (checked against the files by Pillow)."""
+    if kernels == "prebuilt" and native.kind() != "prebuilt":
+        pytest.skip("no C compiler here: the kernels cannot be prebuilt")
     rng = np.random.default_rng(4)
     sizes = {"small": (40, 40), "large": (80, 80)}
     for name, (h, w) in sizes.items():
@@ -72,7 +79,8 @@ def test_a_small_decode_skips_loading_the_compiled_decoder(tmp_path: Path) -> No
         smooth = np.cumsum(rng.integers(-3, 4, (h, w, 3)), axis=1) + 128
         Image.fromarray(np.clip(smooth, 0, 255).astype(np.uint8)).save(folder / "a.png")
         rowcast.compress([folder], tmp_path / f"{name}.rowcast", model=TINY)
-    for name, loaded in (("small", "[]"), ("large", "['numba']")):
+    env = {**os.environ, "ROWCAST_KERNELS": kernels}
+    for name in sizes:
         script = textwrap.dedent(f"""
             import sys
             import rowcast
@@ -80,10 +88,12 @@ def test_a_small_decode_skips_loading_the_compiled_decoder(tmp_path: Path) -> No
                                           model="{TINY}").failed
             print(sorted({{m.split(".")[0] for m in sys.modules}} & {{"numba"}}))
         """)
-        result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+        result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                                env=env)
 
         assert result.returncode == 0, result.stderr
-        assert result.stdout.strip() == loaded, name
+        jit_loaded = kernels == "jit" and name == "large"
+        assert result.stdout.strip() == ("['numba']" if jit_loaded else "[]"), name
         with Image.open(tmp_path / f"out-{name}" / "a.png") as back, \
                 Image.open(tmp_path / name / "a.png") as original:
             assert np.array_equal(np.asarray(back), np.asarray(original))

@@ -19,7 +19,6 @@ bounded memory. The whole picture may instead be kept as a PNG of its values (me
 from __future__ import annotations
 
 import io
-import sys
 import zlib
 from collections import defaultdict
 from collections.abc import Callable, Sequence
@@ -29,7 +28,7 @@ import imagecodecs
 import numpy as np
 from PIL import Image
 
-from rowcast import codec, deep, varint
+from rowcast import codec, deep, native, varint
 from rowcast.entropy import PayloadError
 from rowcast.picture import PALETTE, Picture, interleaved
 from rowcast.pixelformats import PixelFormat
@@ -41,11 +40,12 @@ _PIECE_NAMES = {code: name for name, code in PIECES.items()}
 PREDICTED = ("model", "tuned", "adaptive")  # pieces coded by the predictor
 ONE_BIT_HIGH = 255  # a 1-bit value of 1 as the predictor sees it
 TILE = 256  # predicted planes with a side over this are coded in tiles of this side
-# A decode of this many predicted pixels or fewer, in a process that has not loaded the
-# compiled decoder, runs the reference decoder instead: loading numba and the compiled
-# loop costs about 0.5 s, more than the reference takes for one 64-px thumbnail
-# (measured on 2 cores: 32 x 32 RGB 0.14 s against 0.54 s, 64 x 64 0.41 against 0.57,
-# 128 x 128 1.51 against 0.68, loading included). The pixels are the same either way.
+# A decode of this many predicted pixels or fewer, where the compiled kernels are neither
+# loaded nor prebuilt for this machine (`native.ready`), runs the reference decoder
+# instead: building them takes seconds, and loading numba's JIT about 0.5 s, more than the
+# reference takes for one 64-px thumbnail (measured on 2 cores with the JIT: 32 x 32 RGB
+# 0.14 s against 0.54 s, 64 x 64 0.41 against 0.57, 128 x 128 1.51 against 0.68, loading
+# included). The pixels are the same either way.
 REFERENCE_PIXELS = 64 * 64
 # Predictor planes decoded together: the compiled loop's products are matrices of this
 # many images (split among the worker processes). Measured on 2 cores, 178 thumbnails of
@@ -476,7 +476,7 @@ def _decode_slots(engine: Engine | None, wanted: Sequence[Wanted], slots: list[_
     out: dict[int, np.ndarray | CodingError] = {}
     if slots and engine is None:
         raise ValueError("predictor pieces need an engine")
-    compiled = ("numba" in sys.modules
+    compiled = (native.ready()
                 or sum(s.shape[1] * s.shape[2] for s in slots) > REFERENCE_PIXELS)
     buckets: dict[tuple, list[_Slot]] = defaultdict(list)
     per_item: dict[int, int] = defaultdict(int)

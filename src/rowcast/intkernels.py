@@ -4,8 +4,8 @@ summed in int32) and its requantisation.
 
 Requantisation as the model file defines it: out = (acc * mult + 2**(shift - 1)) >> shift
 in int64 (exact: the loader checks |acc| * mult < 2**52), clamped to 0..255 after ReLU
-layers. numba compiles these on first use; importing this module imports numba, so the
-commands that decode nothing never load it.
+layers. `native` compiles them (ahead of time, or with numba's JIT); this module imports
+neither numba nor llvmlite until then.
 """
 
 from __future__ import annotations
@@ -13,13 +13,12 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from llvmlite import ir
-from numba import njit, types
-from numba.core import cgutils
-from numba.extending import intrinsic
+
+from rowcast import native
+from rowcast.native import jit
 
 
-@njit(cache=True, nogil=True)
+@jit
 def requantised(acc: np.int64, mult: np.int64, shift: int, relu: bool) -> np.int64:
     """One accumulator requantised."""
     out = (acc * mult + (np.int64(1) << (shift - 1))) >> shift
@@ -28,7 +27,7 @@ def requantised(acc: np.int64, mult: np.int64, shift: int, relu: bool) -> np.int
     return out
 
 
-@njit(cache=True, nogil=True)
+@jit
 def requantise_into(acc, bias, mult, shift, relu, out):
     """out[i, j] = requantised(acc[i, j] + bias[j]) for accumulators (N, C >= len(bias)),
     into the first len(bias) columns of out (N, ...): one pass instead of numpy's five."""
@@ -47,13 +46,17 @@ def requantise_into(acc, bias, mult, shift, relu, out):
 # products exactly.
 
 LANES = 16  # int32 outputs per accumulator vector
-_V16 = ir.VectorType(ir.IntType(32), LANES)
 
 
 def _uses_vnni(context) -> bool:
-    """Whether the code numba emits may use AVX-512 VNNI (the features it compiles for,
-    which NUMBA_CPU_NAME / NUMBA_CPU_FEATURES may narrow)."""
-    return "+avx512vnni" in getattr(context.codegen(), "_tm_features", "")
+    """Whether the code numba emits may use AVX-512 VNNI: the features it compiles for
+    (which NUMBA_CPU_NAME / NUMBA_CPU_FEATURES may narrow), or when it compiles ahead of
+    time for this machine ("host"), this CPU's."""
+    codegen = context.codegen()
+    features = getattr(codegen, "_tm_features", "")
+    if not features and getattr(codegen, "_cpu_name", "") == "host":
+        features = codegen._get_host_cpu_features()
+    return "+avx512vnni" in features
 
 
 def vnni() -> bool:
@@ -63,18 +66,22 @@ def vnni() -> bool:
     return _uses_vnni(cpu_target.target_context)
 
 
-def _dot4(builder: ir.IRBuilder, acc, quad, weights, vnni: bool):
+def _dot4(builder, acc, quad, weights, vnni: bool):
     """acc (16 x i32) plus, in each lane, the four products of `quad` (four uint8 in an
     i32) with that lane's four int8 weights in `weights` (64 x i8)."""
+    from llvmlite import ir
+    from numba.core import cgutils
+
+    v16 = ir.VectorType(ir.IntType(32), LANES)
     if vnni:
         fn = cgutils.get_or_insert_function(
-            builder.module, ir.FunctionType(_V16, [_V16, _V16, _V16]),
+            builder.module, ir.FunctionType(v16, [v16, v16, v16]),
             "llvm.x86.avx512.vpdpbusd.512")
         spread = builder.shuffle_vector(
-            builder.insert_element(ir.Constant(_V16, ir.Undefined), quad,
+            builder.insert_element(ir.Constant(v16, ir.Undefined), quad,
                                    ir.Constant(ir.IntType(32), 0)),
-            ir.Constant(_V16, ir.Undefined), ir.Constant(_V16, [0] * LANES))
-        return builder.call(fn, [acc, spread, builder.bitcast(weights, _V16)])
+            ir.Constant(v16, ir.Undefined), ir.Constant(v16, [0] * LANES))
+        return builder.call(fn, [acc, spread, builder.bitcast(weights, v16)])
     # pairs of products summed as pmaddwd does, so x86 targets without VNNI get that
     half, pairs = ir.VectorType(ir.IntType(16), 4 * LANES), ir.VectorType(ir.IntType(32), 2 * LANES)
     four = builder.bitcast(quad, ir.VectorType(ir.IntType(8), 4))
@@ -101,6 +108,12 @@ def _block(vectors: int):
     * vectors] = (out's values, when `add`, plus) the int32 dot products of a[a_at : a_at +
     4 * quads] (uint8) with as many outputs' weights, packed from w[w_at] as (quads, 16 *
     vectors, 4) int8."""
+    from llvmlite import ir
+    from numba import types
+    from numba.core import cgutils
+    from numba.extending import intrinsic
+
+    v16 = ir.VectorType(ir.IntType(32), LANES)
 
     @intrinsic
     def block(typingctx, a, a_at, w, w_at, out, out_at, quads, add):
@@ -116,10 +129,10 @@ def _block(vectors: int):
             vnni = _uses_vnni(context)
             weights = ir.VectorType(ir.IntType(8), 4 * LANES)
             start = [builder.bitcast(builder.gep(po, [ir.Constant(ir.IntType(64), LANES * v)]),
-                                     _V16.as_pointer()) for v in range(vectors)]
+                                     v16.as_pointer()) for v in range(vectors)]
             flag = context.cast(builder, add_, sig.args[7], types.boolean)
             accs = [cgutils.alloca_once_value(builder, builder.select(
-                flag, builder.load(at, align=4), ir.Constant(_V16, [0] * LANES)))
+                flag, builder.load(at, align=4), ir.Constant(v16, [0] * LANES)))
                 for at in start]
             with cgutils.for_range(builder, quads_) as loop:
                 i = loop.index
@@ -140,7 +153,9 @@ def _block(vectors: int):
     return block
 
 
-_block1, _block2, _block3, _block4 = (_block(v) for v in (1, 2, 3, 4))
+_block1 = _block2 = _block3 = _block4 = None  # intrinsics: made when compiling (`native`)
+for _v in (1, 2, 3, 4):
+    native.later("intkernels", f"_block{_v}", functools.partial(_block, _v))
 
 
 def packed(weight: np.ndarray) -> np.ndarray:
@@ -154,7 +169,7 @@ def packed(weight: np.ndarray) -> np.ndarray:
     return np.concatenate([b.reshape(len(b), -1, 4).transpose(1, 0, 2).ravel() for b in blocks])
 
 
-@njit(cache=True, nogil=True, inline="always")
+@jit(inline="always")
 def dot(a, a_at, w, n, j, out, out_at, quads, add):
     """Outputs j.. (a multiple of 64; up to 64 of them) of n (padded) whose weights `packed`
     put in w: out[out_at:] = (out's values, when `add`, plus) their dot products with the
@@ -171,7 +186,7 @@ def dot(a, a_at, w, n, j, out, out_at, quads, add):
         _block1(a, a_at, w, w_at, out, out_at, quads, add)
 
 
-@njit(cache=True, nogil=True)
+@jit
 def dense(a, w, out):
     """out (M, N) int32 = a (M, K) uint8 @ the weights `packed` into w, for N outputs padded
     to a multiple of 16 and K inputs padded to a multiple of 4 (C-contiguous arrays)."""
@@ -196,7 +211,7 @@ def conv_weights(layer) -> np.ndarray:
     return np.stack([packed(w[:, i].reshape(cout, -1)) for i in range(kh)])
 
 
-@njit(cache=True, nogil=True)
+@jit
 def conv_rows(p, w, bias, mult, shift, relu, out):
     """A layer's requantised outputs out (B, H, W, cout) from its padded input p (B, H + kh -
     1, W + kw - 1, cin) uint8, cin a multiple of 4, and its `conv_weights` w. An output's

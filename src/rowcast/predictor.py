@@ -178,7 +178,10 @@ class Engine:
         """`parallel` on uint8 activations: each row-stack layer one `conv_rows` over its
         input padded in place, the head a band of rows at a time (its activations stay in
         cache)."""
-        from rowcast.intkernels import conv_rows, conv_weights  # numba: only when coding
+        from rowcast import native
+        from rowcast.intkernels import conv_weights
+
+        kernels = native.kernels()
 
         b, _, h, w = x.shape
         t = x.transpose(0, 2, 3, 1)
@@ -188,7 +191,7 @@ class Engine:
             p = np.zeros((b, h + 1, w + kw - 1, -(-cin // 4) * 4), np.uint8)
             p[:, 1:, kw // 2 : kw // 2 + w, :cin] = a
             a = np.empty((b, h, w, len(layer.weight)), np.uint8)
-            conv_rows(p, conv_weights(layer), layer.bias, layer.mult, layer.shift, True, a)
+            kernels.conv_rows(p, conv_weights(layer), layer.bias, layer.mult, layer.shift, True, a)
         head_in = [a, left_window(t, self.left)]
         if self.model.activity:
             head_in.append(activity_planes(t))
@@ -203,10 +206,11 @@ class Engine:
             u[..., : band.shape[3]] = band
             for layer, weights in head:
                 v = np.zeros((*band.shape[:3], -(-len(layer.weight) // 4) * 4), np.uint8)
-                conv_rows(u, weights, layer.bias, layer.mult, layer.shift, True, v)
+                kernels.conv_rows(u, weights, layer.bias, layer.mult, layer.shift, True, v)
                 u = v
             out.append(np.empty((*band.shape[:3], len(self.out.weight)), np.int64))
-            conv_rows(u, last, self.out.bias, self.out.mult, self.out.shift, False, out[-1])
+            kernels.conv_rows_wide(u, last, self.out.bias, self.out.mult, self.out.shift, False,
+                                   out[-1])
         return np.concatenate(out, 1)
 
     # -- decoder: a row at a time, then a pixel at a time ------------------------------------

@@ -24,8 +24,10 @@ model construction", for the whole algorithm and test vectors.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
+
+from rowcast import native
+from rowcast.native import jit
 
 PRECISION = 24  # bits of the model's fixed-point probabilities
 ONE = 1 << PRECISION  # the fixed-point total
@@ -41,10 +43,7 @@ _WORD_ONE = np.uint64(1 << 32)  # range below this: the decoder reads a word
 _F32_TINY = float(np.finfo(np.float32).tiny)  # the least positive normal numbers
 _F64_TINY = float(np.finfo(np.float64).tiny)
 
-_jit = numba.njit(cache=True, nogil=True)
-
-
-@_jit
+@jit
 def quantise(counts: np.ndarray, cdf: np.ndarray) -> bool:
     """Write into `cdf` (n + 1 entries, uint32 or int64) the 24-bit cumulative distribution
     that constriction's `Categorical(counts, perfect=False)` builds from `counts` (n
@@ -75,9 +74,9 @@ def quantise(counts: np.ndarray, cdf: np.ndarray) -> bool:
     for i in range(n):
         product = cumulative * scale
         if not (product > 0):  # saturating float-to-int cast: NaN and negatives to 0
-            whole = 0
+            whole = np.int64(0)
         elif product >= 4294967296.0:
-            whole = _U32_MAX
+            whole = np.int64(_U32_MAX)
         else:
             whole = np.int64(product)  # truncation
         left = (whole + i) & _U32_MAX  # u32 addition wraps
@@ -89,7 +88,7 @@ def quantise(counts: np.ndarray, cdf: np.ndarray) -> bool:
     return ok
 
 
-@_jit
+@jit
 def decoder_start(words: np.ndarray) -> np.ndarray:
     """A decoder state (uint64 [lower, range, point, next word]) at the start of `words`
     (uint32): `point` holds the first two words, zeros standing in for missing ones."""
@@ -106,7 +105,7 @@ def decoder_start(words: np.ndarray) -> np.ndarray:
     return state
 
 
-@_jit
+@jit
 def _last_at_most(cdf: np.ndarray, q: int, guess: int) -> int:
     """The last index i < len(cdf) - 1 with cdf[i] <= q (0 if none), for a non-decreasing
     cdf: a search that gallops out from `guess` when it lies inside, so it reads the few
@@ -134,7 +133,7 @@ def _last_at_most(cdf: np.ndarray, q: int, guess: int) -> int:
     return low
 
 
-@_jit
+@jit
 def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
                   guess: int = -1) -> int:
     """Decode one symbol with the model `cdf` (from `quantise`, n + 1 entries), advancing
@@ -177,7 +176,7 @@ def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
     return low
 
 
-@_jit
+@jit
 def decode_counts(state: np.ndarray, words: np.ndarray, counts: np.ndarray,
                   scratch_cdf: np.ndarray) -> int:
     """Decode one symbol under the table `counts` (n entries), building its model in
@@ -195,7 +194,7 @@ _STATE_ONE = np.uint64(0xFFFFFFFFFFFFFFFF)
 _WORD_MASK = np.uint64(_U32_MAX)
 
 
-@_jit
+@jit
 def encoder_start() -> np.ndarray:
     """A fresh encoder state: the whole 64-bit interval, nothing written."""
     state = np.zeros(5, np.uint64)
@@ -203,7 +202,7 @@ def encoder_start() -> np.ndarray:
     return state
 
 
-@_jit
+@jit
 def _put(words: np.ndarray, n: int, word) -> np.ndarray:
     """words with words[n] = word, grown (doubled) when full."""
     if n >= words.size:
@@ -214,7 +213,7 @@ def _put(words: np.ndarray, n: int, word) -> np.ndarray:
     return words
 
 
-@_jit
+@jit
 def encode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray, symbol: int):
     """Encode `symbol` with the model `cdf` (from `quantise`) as constriction's range
     encoder does; returns (the words, perhaps grown, True), or (words, False) with the
@@ -256,7 +255,7 @@ def encode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray, symbol:
     return words, True
 
 
-@_jit
+@jit
 def encode_tables(state: np.ndarray, words: np.ndarray, symbols: np.ndarray,
                   tables: np.ndarray):
     """Encode symbols (N,) each with its count table (N, n) as `quantise` models it;
@@ -295,13 +294,17 @@ class Encoder:
     codes into it with models built once and shared."""
 
     def __init__(self) -> None:
-        self.state = encoder_start()
+        self.state = native.kernels().encoder_start()
         self.words = np.empty(64, np.uint32)
 
     def encode(self, symbols: np.ndarray, _family, tables: np.ndarray) -> None:
-        """Symbols (N,) each coded with its count table (N, n)."""
-        self.words, bad = encode_tables(self.state, self.words, np.asarray(symbols, np.int64),
-                                        np.ascontiguousarray(tables))
+        """Symbols (N,) each coded with its count table (N, n), float32 or float64 (each
+        computes its model in its own type, as constriction does)."""
+        k = native.kernels()
+        single = np.asarray(tables).dtype == np.float32
+        self.words, bad = (k.encode_tables if single else k.encode_tables_wide)(
+            self.state, self.words, np.ascontiguousarray(symbols, np.int64),
+            np.ascontiguousarray(tables, np.float32 if single else np.float64))
         if bad >= 0:
             raise ValueError(f"symbol {bad} has no probability under its table")
 

@@ -11,8 +11,8 @@ column for the whole batch, so each product is a matrix of images. Tables become
 coder's fixed-point distributions with `rangecoder.quantise`; a single component's are
 cached per table row, so each is built once per process.
 
-numba compiles the loop on first use and caches the machine code beside the module (or in
-NUMBA_CACHE_DIR), so only the first run on a machine pays for compiling.
+The loop's kernels are compiled by `native` (ahead of time once per machine, or by numba's
+JIT); Python calls them through `native.kernels()`.
 """
 
 from __future__ import annotations
@@ -21,19 +21,11 @@ import functools
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit
 
-from rowcast import entropy, feedback, rangecoder, tablecdfs
+from rowcast import entropy, feedback, native, rangecoder, tablecdfs
 from rowcast import family as fam
-from rowcast.intkernels import (
-    LANES,
-    conv_rows,
-    conv_weights,
-    dense,
-    packed,
-    requantise_into,
-    requantised,
-)
+from rowcast.intkernels import LANES, conv_weights, dense, packed, requantise_into, requantised
+from rowcast.native import jit
 from rowcast.predictor import INT32_SAFE, Engine
 from rowcast.tablecdfs import row_cdf
 from rowcast.tables import MEANS, SPAN
@@ -50,15 +42,16 @@ class Stream:
             raise entropy.PayloadError("payload length is not a whole number of 32-bit words")
         order = ">u4" if trimmed else "<u4"
         self.words = np.frombuffer(payload, order).astype(np.uint32)
-        self.state = rangecoder.decoder_start(self.words)
+        self.state = native.kernels().decoder_start(self.words)
 
     def decode(self, _family, tables: np.ndarray) -> np.ndarray:
         """One symbol for each table (rows, values), as constriction's decoder does."""
+        k = native.kernels()
         out = np.empty(len(tables), np.int64)
-        for i, table in enumerate(np.asarray(tables, np.float32)):
+        for i, table in enumerate(np.ascontiguousarray(tables, np.float32)):
             cdf = np.empty(len(table) + 1, np.uint32)
-            rangecoder.quantise(table, cdf)
-            out[i] = rangecoder.decode_symbol(self.state, self.words, cdf)
+            k.quantise(table, cdf)
+            out[i] = k.decode_symbol(self.state, self.words, cdf, -1)
             if out[i] < 0:
                 raise entropy.PayloadError("a payload is not what its model codes")
         return out
@@ -96,8 +89,9 @@ class Kernel:
         w1 = h1.weight[:, :, 0, 0].T.astype(np.int64)  # (inputs, hidden)
         width, left = model.width, model.left
         by_pixel = w1[width : width + 4 * left].reshape(left, 4, -1)
-        valid = np.concatenate([np.zeros((1, w1.shape[1]), np.int64),
-                                np.cumsum(255 * by_pixel[:, 3], axis=0)]) + h1.bias
+        valid = np.ascontiguousarray(np.concatenate([np.zeros((1, w1.shape[1]), np.int64),
+                                                     np.cumsum(255 * by_pixel[:, 3], axis=0)])
+                                     + h1.bias)
         stack = tuple((conv_weights(layer), len(layer.weight), layer.weight.shape[3],
                        layer.bias, layer.mult, layer.shift) for layer in engine.rows)
         return cls(packed(by_pixel[:, :3].reshape(3 * left, -1).T), left, h1.mult, h1.shift,
@@ -124,7 +118,7 @@ class Kernel:
             pair[:, 0] = pair[:, 1]
             pair[:, 1, kw // 2 : kw // 2 + width, : a.shape[2]] = a
             a = np.empty((batch, 1, width, cout), np.uint8)
-            conv_rows(pair, w, bias, mult, shift, True, a)
+            native.kernels().conv_rows(pair, w, bias, mult, shift, True, a)
             a = a[:, 0]
         return a
 
@@ -134,7 +128,7 @@ class Kernel:
         terms = np.zeros((len(feats), self.valid.shape[1]), np.int64)
         if self.activity is not None:
             terms += activity.astype(np.int64) @ self.activity
-        return _head_rows(feats, self.rows, self.valid, terms)
+        return native.kernels().head_rows(feats, self.rows, self.valid, terms)
 
 
 @functools.cache
@@ -186,11 +180,12 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
                np.empty((batch, -(-outputs // LANES) * LANES), np.int32),
                np.empty((batch, outputs), np.int64))
     counts, columns, surprise, ftab, cdfs, built = _lookups()
+    row = native.kernels().row
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         feats = kernel.row_features(state, above)
         acc = kernel.head_rows(feats, fam.activity_from_sums(misses, y, width))
-        bad = _row(y, acc, img, planes, kernel.left, kernel.lefts, kernel.m1, kernel.s1, kernel.w2,
+        bad = row(y, acc, img, planes, kernel.left, kernel.lefts, kernel.m1, kernel.s1, kernel.w2,
                    kernel.b2, kernel.m2, kernel.s2, kernel.w3, kernel.b3, kernel.m3, kernel.s3,
                    tuned, levels, origin, couplings, active, gains, biases, q, e, misses,
                    counts, columns, surprise, ftab, cdfs, built, states, words, ends, *scratch)
@@ -202,7 +197,7 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
     return img[:, :planes]
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _head_rows(feats, w, valid, activity):
     """Head 1's accumulators (B, W, hidden) int32 of a row from the row stack's features
     (B, W, width) uint8: their products, the bias and valid planes' terms of each column
@@ -222,7 +217,7 @@ def _head_rows(feats, w, valid, activity):
     return out
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _head(x, y, acc, img, wl, left, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, lefts, acc1, a1,
           acc2, a2, acc3, raw):
     """The raw outputs (B, outputs) of column x into `raw`. Scratch: lefts (B, 3 * left
@@ -245,12 +240,12 @@ def _head(x, y, acc, img, wl, left, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, left
     requantise_into(acc3, b3, m3, s3, False, raw)
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _clamp(v, lo, hi):
     return min(max(v, lo), hi)
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
          origin, couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
          cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):

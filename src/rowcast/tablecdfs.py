@@ -12,10 +12,10 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from numba import njit
 
 from rowcast import family as fam
-from rowcast import rangecoder
+from rowcast import native, rangecoder
+from rowcast.native import jit
 from rowcast.tables import LEVELS, MEANS, SPAN, symbol_columns, symbol_counts
 
 
@@ -27,7 +27,7 @@ def cache() -> tuple[np.ndarray, ...]:
             np.zeros((LEVELS * MEANS, 257), np.uint32), np.zeros(LEVELS * MEANS, np.bool_))
 
 
-@njit(cache=True, nogil=True)
+@jit
 def row_cdf(row, counts, columns, cdfs, built, table):
     """The quantised table of `all_tables()` row `row`, built on first use (`table`: 256
     float32 of scratch)."""
@@ -40,7 +40,7 @@ def row_cdf(row, counts, columns, cdfs, built, table):
     return cdfs[row]
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _encode_rows(state, words, symbols, rows, counts, columns, cdfs, built):
     table = np.empty(256, np.float32)
     for i in range(len(symbols)):
@@ -53,7 +53,8 @@ def _encode_rows(state, words, symbols, rows, counts, columns, cdfs, built):
 
 def encode_rows(coder: rangecoder.Encoder, symbols: np.ndarray, rows: np.ndarray) -> None:
     """Encode symbols (N,) with the tables of `all_tables()` rows (N,) into `coder`."""
-    coder.words, bad = _encode_rows(coder.state, coder.words, np.asarray(symbols, np.int64),
-                                    np.asarray(rows, np.int64), *cache())
+    coder.words, bad = native.kernels().encode_rows(
+        coder.state, coder.words, np.ascontiguousarray(symbols, np.int64),
+        np.ascontiguousarray(rows, np.int64), *cache())
     if bad >= 0:
         raise ValueError(f"symbol {bad} has no probability under its table")

@@ -10,13 +10,14 @@ same integers (`tables.symbol_lengths` looked up at `tables.count_index`).
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
 from rowcast import family as fam
+from rowcast import native
+from rowcast.native import jit
 from rowcast.tables import SPAN
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _lengths(lengths, columns, levels, means, d, m, after, out):
     """out[k, i] for d (1 or K, 1 or N) and m (1 or K, 1 or N): each row or column of one
     stands for all."""
@@ -33,8 +34,13 @@ def _lengths(lengths, columns, levels, means, d, m, after, out):
 
 def _matrix(v: np.ndarray | int) -> np.ndarray:
     """A move as (rows, columns) int64: a scalar (1, 1), (N,) (1, N), (K, 1) or (K, N)."""
-    a = np.asarray(v, np.int64)
+    a = np.ascontiguousarray(v, np.int64)
     return a.reshape(1, -1) if a.ndim < 2 else a
+
+
+def _flat(*arrays: np.ndarray) -> list[np.ndarray]:
+    """Each as contiguous int64, as the compiled kernels take them."""
+    return [np.ascontiguousarray(a, np.int64) for a in arrays]
 
 
 def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
@@ -49,12 +55,12 @@ def plane_lengths(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
     d2, m2 = _matrix(d), _matrix(m)
     rows = max(d2.shape[0], m2.shape[0])
     out = np.empty((rows, n), np.int64)
-    after = np.zeros(n, np.int64) if after is None else np.asarray(after, np.int64)
-    _lengths(lengths, columns, levels, means, d2, m2, after, out)
+    after = np.zeros(n, np.int64) if after is None else after
+    native.kernels().lengths(*_flat(lengths, columns, levels, means), d2, m2, *_flat(after), out)
     return out if np.ndim(d) == 2 or np.ndim(m) == 2 else out[0]
 
 
-@njit(cache=True, nogil=True)
+@jit
 def _coupled_sums(lengths, columns, levels, means, ca, cb, ra, rb, da, db, out):
     for k in range(len(out)):
         total = np.int64(0)
@@ -74,6 +80,6 @@ def coupled_sums(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
     the family's range, for K pairs of offsets: `couplings` (ca, cb) and `residuals` (ra,
     rb) are (N,) each (zeros for a plane that one coupling moves); levels are as they are."""
     out = np.empty(len(da), np.int64)
-    _coupled_sums(lengths, columns, levels, means, *couplings, *residuals,
-                  np.asarray(da, np.int64), np.asarray(db, np.int64), out)
+    native.kernels().coupled_sums(*_flat(lengths, columns, levels, means, *couplings,
+                                         *residuals, da, db), out)
     return out
