@@ -37,6 +37,7 @@ from rowcast.picture import (
 from rowcast.pixelformats import BY_NAME
 from rowcast.predictor import Engine
 from rowcast.quantize import IntModel, ModelError, bundled_model, load_model, model_from_bytes
+from rowcast.workers import map_split
 
 DEFAULT_BATCH = entrycodec.BATCH
 GROUP_IMAGES = 128  # images read and coded together while compressing
@@ -287,6 +288,23 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
         """Kept and left-out files at once; images a group at a time, coded together."""
         group: list[tuple[Found, Picture]] = []
         pixels = 0
+
+        def flush() -> Iterator[Entry]:
+            """The group's entries: whether each picture can be restored is checked on
+            every core (`imagefile.restored`, a write and read back in memory); those that
+            cannot are kept as bytes."""
+            plans = map_split(lambda fp: imagefile.restored(fp[0].name, fp[1]), group, pixels)
+            able = []
+            for (f, _), plan in zip(group, plans, strict=True):
+                if plan is None:
+                    yield _kept(replace(f, action="bytes", reason=UNWRITABLE), rows)
+                    if progress:
+                        progress(1)
+                else:
+                    able.append((f, *plan))
+            yield from _coded(engine, able, strip_metadata, rows, progress, quick,
+                              None if engine is base else base, payloads)
+
         for f in found:
             if f.action == "bytes":
                 yield _kept(f, rows)
@@ -302,21 +320,15 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                     continue
                 if strip_metadata:
                     picture = picture.without_metadata()
-                plan = imagefile.restored(f.name, picture)
-                if plan is None:
-                    yield _kept(replace(f, action="bytes", reason=UNWRITABLE), rows)
-                    continue
-                group.append((f, *plan))
+                group.append((f, picture))
                 pixels += picture.width * picture.height
                 if len(group) >= GROUP_IMAGES or pixels >= GROUP_PIXELS:
-                    yield from _coded(engine, group, strip_metadata, rows, progress, quick,
-                                      None if engine is base else base, payloads)
+                    yield from flush()
                     group, pixels = [], 0
                 continue
             if progress:
                 progress(1)
-        yield from _coded(engine, group, strip_metadata, rows, progress, quick,
-                          None if engine is base else base, payloads)
+        yield from flush()
 
     ident = identity(net, embed_model)
     try:

@@ -33,6 +33,7 @@ from rowcast.entropy import PayloadError
 from rowcast.picture import PALETTE, Picture, interleaved
 from rowcast.pixelformats import PixelFormat
 from rowcast.predictor import Engine
+from rowcast.workers import map_split
 
 PIECES: dict[str, int] = {"literal": 0, "model": 1, "tuned": 2, "adaptive": 3, "zlib": 4,
                           "tiles": 5}
@@ -115,8 +116,9 @@ def _piece(method: str, data: bytes) -> bytes:
 def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
                     workers: int | None = None, quick: bool = False) -> list[Encoded]:
     """The shortest payload of each picture (`Encoded`); same-sized predictor pieces of
-    all the pictures are coded together. `engine` None codes without the predictor;
-    `quick`: without `codec.tuning_of`'s second search."""
+    all the pictures are coded together, and their PNG fallbacks made on every core (as
+    the coding is). `engine` None codes without the predictor; `quick`: without
+    `codec.tuning_of`'s second search."""
     groups = [_groups(p) for p in pictures]
     buckets: dict[tuple, list[tuple[int, int, int, int]]] = defaultdict(list)
     for i, picture_groups in enumerate(groups):
@@ -132,6 +134,7 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
             coded.update(zip(members, codec.encode_batch(engine, images, "adaptive",
                                                          workers=workers, quick=quick),
                              strict=True))
+    pngs = map_split(png_of, pictures, sum(p.width * p.height for p in pictures), workers)
     results = []
     for i, picture in enumerate(pictures):
         body, parts, bits = bytearray(), [], 0.0
@@ -152,7 +155,8 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
                 else:
                     body += _piece("tiles", varint.pack(TILE) + b"".join(
                         _piece(m, d) for m, d, _ in chosen))
-        results.append(_shortest(picture, Encoded("coded", bytes(body), tuple(parts), bits)))
+        results.append(_shortest(picture, pngs[i],
+                                 Encoded("coded", bytes(body), tuple(parts), bits)))
     return results
 
 
@@ -181,10 +185,11 @@ def _summary(methods: list[str]) -> str:
     return next((m for m in reversed(PREDICTED) if m in methods), methods[0])
 
 
-def _shortest(picture: Picture, coded: Encoded) -> Encoded:
-    """The shortest of the coded payload, a PNG of the values and the raw values."""
+def _shortest(picture: Picture, png: bytes, coded: Encoded) -> Encoded:
+    """The shortest of the coded payload, the PNG of the values (`png_of`) and the raw
+    values."""
     best = coded
-    for method, payload in (("png", png_of(picture)), ("literal", literal_of(picture))):
+    for method, payload in (("png", png), ("literal", literal_of(picture))):
         if len(payload) < len(best.payload):
             best = Encoded(method, payload, (), 8.0 * len(payload))
     return best

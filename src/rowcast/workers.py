@@ -52,6 +52,16 @@ def shares(count: int, workers: int | None, pixels: int) -> list[tuple[int, int]
     return list(zip(cuts, cuts[1:], strict=False))
 
 
+def map_split(fn: Callable[[Any], Any], items: Sequence, pixels: int,
+              workers: int | None = None) -> list:
+    """[fn(item) for item in items], the items shared among forked processes as a batch of
+    `pixels` pixels in all is (`shares`, `run_split`)."""
+    cuts = shares(len(items), workers, pixels // max(1, len(items)))
+    done = run_split(lambda part, _report: [fn(item) for item in part],
+                     [items[a:b] for a, b in cuts])
+    return [result for part in done for result in part]
+
+
 def can_fork() -> bool:
     """Whether parts may run in forked children on this platform."""
     return sys.platform.startswith("linux") and "fork" in mp.get_all_start_methods()
