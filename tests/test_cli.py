@@ -571,6 +571,34 @@ def test_an_image_no_container_can_write_back_is_kept_as_bytes(
     assert (out / "odd.png").read_bytes() == (folder / "odd.png").read_bytes()
 
 
+@pytest.mark.parametrize("count", [3, 40], ids=["in process", "shared among processes"])
+def test_a_file_that_cannot_be_made_fails_alone(tmp_path: Path, count: int,
+                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    """When one restored picture's file cannot be made, decompress names it and why, and
+    restores every other file, whether the files are made here or in forked processes."""
+    folder, archive, out = tmp_path / "in", tmp_path / "a.rca", tmp_path / "out"
+    folder.mkdir()
+    for i in range(count):
+        Image.fromarray(smooth(64, 64, 3, i), "RGB").save(folder / f"f{i:02d}.png")
+    assert run("compress", folder, "-o", archive, "--model", TINY).exit_code == 0
+    file_bytes = rowcast.imagefile.file_bytes
+
+    refused = {"f01.png", "f30.png"}  # with 40, the second is made in a forked process
+
+    def refusing(picture, path):
+        if path.name in refused:
+            raise rowcast.imagefile.ImageError(f"{path}: no room for it")
+        return file_bytes(picture, path)
+
+    monkeypatch.setattr(rowcast.imagefile, "file_bytes", refusing)
+    result = run("decompress", archive, "-o", out, "--model", TINY)
+
+    made = {f"f{i:02d}.png" for i in range(count)}
+    assert result.exit_code != 0
+    assert all(f"{name}: no room for it" in result.stderr for name in made & refused)
+    assert files_under(out) == made - refused
+
+
 def test_images_are_found_by_content_whatever_their_names(tmp_path: Path) -> None:
     """`frame.dat`, `noext` and `b.dib` holding images are coded (rowcast 0.8 skipped them
     silently), and come back under the same names."""

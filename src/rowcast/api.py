@@ -576,22 +576,33 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
     _remove_stale_stages(outdir)
     stage = Path(tempfile.mkdtemp(prefix=f"{STAGE_PREFIX}{os.getpid()}-", dir=outdir))
     failed, ready = [], []
+    pending: list[tuple[IndexEntry, Path, Content]] = []
+
+    def flush() -> None:
+        """Write the pending entries into the stage, their files made on every core."""
+        pixels = sum(c.width * c.height for _, _, c in pending if isinstance(c, Picture))
+        for (e, tmp, _), data in zip(pending, map_split(_file_data, pending, pixels),
+                                     strict=True):
+            try:
+                if isinstance(data, ImageError):
+                    raise data
+                tmp.parent.mkdir(parents=True, exist_ok=True)
+                imagefile.write_new(tmp, data)
+            except ImageError as exc:
+                failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
+                continue
+            ready.append(e)
+        pending.clear()
+
     try:
         for e, content in _contents(src, ident, kept, model, batch, progress):
             if isinstance(content, DataError):
                 failed.append(str(content))
                 continue
-            tmp = stage / e.restored_path
-            tmp.parent.mkdir(parents=True, exist_ok=True)
-            try:
-                if isinstance(content, Picture):
-                    imagefile.write_picture(content, tmp)
-                else:
-                    tmp.write_bytes(content)
-            except ImageError as exc:
-                failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
-                continue
-            ready.append(e)
+            pending.append((e, stage / e.restored_path, content))
+            if len(pending) >= WRITE_CHUNK:
+                flush()
+        flush()
         written = _put_in_place([(stage / e.restored_path, targets[e.path]) for e in ready],
                                 outdir, stage)
     finally:
@@ -602,6 +613,19 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
 
 
 STAGE_PREFIX = ".rowcast-stage-"  # then the pid of the decompress that made it
+WRITE_CHUNK = 256  # restored entries whose files are made together
+
+
+def _file_data(item: tuple[IndexEntry, Path, Content]) -> bytes | ImageError:
+    """The bytes of an entry's file (an image's in its container), or why it cannot be
+    written there."""
+    _, path, content = item
+    if not isinstance(content, Picture):
+        return content
+    try:
+        return imagefile.file_bytes(content, path)
+    except ImageError as exc:
+        return exc
 
 
 def _remove_stale_stages(outdir: Path) -> None:

@@ -1046,17 +1046,26 @@ def _encoded(picture: Picture) -> bytes:
         raise _Bad(f"cannot be written as {picture.container.upper()} ({exc})") from None
 
 
-def write_picture(picture: Picture, path: Path) -> None:
-    """Write the picture in its container to a new file at `path`."""
+def file_bytes(picture: Picture, path: Path) -> bytes:
+    """The picture's file in its container; ImageError naming `path` if it cannot hold it."""
     try:
-        data = _encoded(picture)
+        return _encoded(picture)
     except _Bad as exc:
         raise ImageError(f"{path}: {exc}") from None
+
+
+def write_new(path: Path, data: bytes) -> None:
+    """Write `data` to a new file at `path`; ImageError naming it if that fails."""
     try:
         with open(path, "xb") as f:
             f.write(data)
     except OSError as exc:
         raise ImageError(f"{path}: cannot be written ({exc.strerror or exc})") from None
+
+
+def write_picture(picture: Picture, path: Path) -> None:
+    """Write the picture in its container to a new file at `path`."""
+    write_new(path, file_bytes(picture, path))
 
 
 def _same(a: Picture, b: Picture) -> bool:

@@ -193,6 +193,9 @@ def build(path: Path) -> None:
     """Compile `ENTRIES` for this machine's CPU into the extension module `path` (its name
     chooses the module's), written whole or not at all; older builds in its folder go, and
     so do work folders that a killed build left over an hour ago."""
+    if sys.stderr.isatty():  # a person waits: say why, once per machine
+        print("rowcast: compiling its kernels for this machine (once, about 15 s)",
+              file=sys.stderr, flush=True)
     jitted()  # the kernel modules' globals become dispatchers: kernels see each other
     path.parent.mkdir(parents=True, exist_ok=True)
     for left in path.parent.glob(".build-*"):
