@@ -133,7 +133,7 @@ def _last_at_most(cdf: np.ndarray, q: int, guess: int) -> int:
     return low
 
 
-@jit
+@jit(inline="always")
 def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
                   guess: int = -1) -> int:
     """Decode one symbol with the model `cdf` (from `quantise`, n + 1 entries), advancing

@@ -27,7 +27,7 @@ def cache() -> tuple[np.ndarray, ...]:
             np.zeros((LEVELS * MEANS, 257), np.uint32), np.zeros(LEVELS * MEANS, np.bool_))
 
 
-@jit
+@jit(inline="always")
 def row_cdf(row, counts, columns, cdfs, built, table):
     """The quantised table of `all_tables()` row `row`, built on first use (`table`: 256
     float32 of scratch)."""
