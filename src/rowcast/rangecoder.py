@@ -106,34 +106,34 @@ def decoder_start(words: np.ndarray) -> np.ndarray:
 
 
 @jit
-def _last_at_most(cdf: np.ndarray, q: int, guess: int) -> int:
-    """The last index i < len(cdf) - 1 with cdf[i] <= q (0 if none), for a non-decreasing
-    cdf: a search that gallops out from `guess` when it lies inside, so it reads the few
-    entries near a likely symbol instead of halving the whole table."""
-    low, high = 0, cdf.size - 1
+def _last_at_most(cdfs: np.ndarray, row: int, q: int, guess: int) -> int:
+    """The last index i < n with cdfs[row, i] <= q (0 if none), for a non-decreasing cdf
+    of n + 1 entries: a search that gallops out from `guess` when it lies inside, so it
+    reads the few entries near a likely symbol instead of halving the whole table."""
+    low, high = 0, cdfs.shape[1] - 1
     if 0 < guess < high:
-        if cdf[guess] <= q:
+        if cdfs[row, guess] <= q:
             low, step = guess, 1
-            while low + step < high and cdf[low + step] <= q:
+            while low + step < high and cdfs[row, low + step] <= q:
                 low += step
                 step *= 2
             high = min(high, low + step)
         else:
             high, step = guess, 1
-            while high - step > 0 and cdf[high - step] > q:
+            while high - step > 0 and cdfs[row, high - step] > q:
                 high -= step
                 step *= 2
             low = max(0, high - step)
     while high - low > 1:
         mid = (low + high) >> 1
-        if cdf[mid] <= q:
+        if cdfs[row, mid] <= q:
             low = mid
         else:
             high = mid
     return low
 
 
-@jit(inline="always")
+@jit
 def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
                   guess: int = -1) -> int:
     """Decode one symbol with the model `cdf` (from `quantise`, n + 1 entries), advancing
@@ -145,34 +145,43 @@ def decode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray,
     also for a hand-made `cdf` that does not start at 0 or has fewer than 2 entries, and
     a hand-made `state` whose range is below 2**24.
     """
-    lower = state[LOWER]
-    range_ = state[RANGE]
-    point = state[POINT]
+    return decode_at(state.reshape(1, -1), 0, words, 0, words.size, cdf.reshape(1, -1), 0,
+                     guess)
+
+
+@jit(inline="always")
+def decode_at(states: np.ndarray, b: int, words: np.ndarray, start: int, end: int,
+              cdfs: np.ndarray, row: int, guess: int) -> int:
+    """`decode_symbol` with state states[b], the words words[start:end] and the model
+    cdfs[row], named by index: the decoder's loop makes no array view per subpixel."""
+    lower = states[b, LOWER]
+    range_ = states[b, RANGE]
+    point = states[b, POINT]
     scale = range_ >> _PRECISION
-    if scale == 0 or cdf.size < 2:  # never from decoder_start and quantise
+    if scale == 0 or cdfs.shape[1] < 2:  # never from decoder_start and quantise
         return INVALID
     quantile = (point - lower) // scale  # wrapping subtraction
     if quantile >= _ONE:
         return INVALID
     q = np.int64(quantile)
-    low = _last_at_most(cdf, q, guess)
-    left = np.int64(cdf[low])
+    low = _last_at_most(cdfs, row, q, guess)
+    left = np.int64(cdfs[row, low])
     if left > q:
         return INVALID
-    width = np.int64(cdf[low + 1]) - left  # > 0: the search keeps cdf[low + 1] > q
+    width = np.int64(cdfs[row, low + 1]) - left  # > 0: the search keeps cdf[low + 1] > q
     lower += scale * np.uint64(left)
     range_ = scale * np.uint64(width)
     if range_ < _WORD_ONE:
         lower <<= _SHIFT
         range_ <<= _SHIFT
         point <<= _SHIFT
-        at = np.int64(state[NEXT])
-        if at < words.size:
-            point |= np.uint64(words[at])
-        state[NEXT] = np.uint64(at + 1)
-    state[LOWER] = lower
-    state[RANGE] = range_
-    state[POINT] = point
+        at = np.int64(states[b, NEXT])
+        if start + at < end:
+            point |= np.uint64(words[start + at])
+        states[b, NEXT] = np.uint64(at + 1)
+    states[b, LOWER] = lower
+    states[b, RANGE] = range_
+    states[b, POINT] = point
     return low
 
 

@@ -27,7 +27,7 @@ from rowcast import family as fam
 from rowcast.intkernels import LANES, conv_weights, dense, packed, requantise_into, requantised
 from rowcast.native import jit
 from rowcast.predictor import INT32_SAFE, Engine
-from rowcast.tablecdfs import row_cdf
+from rowcast.tablecdfs import build_row
 from rowcast.tables import MEANS, SPAN
 
 
@@ -254,7 +254,7 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
     two = raw.shape[1] > fam.OUTPUTS
     table = np.empty(256, np.float32)
     other = np.empty(256, np.float32)
-    mixed_cdf = np.empty(257, np.uint32)
+    mixed = np.empty((1, 257), np.uint32)  # a mixture's model, as a one-row table
     base = np.empty(3, np.int64)
     mean = np.empty(3, np.int64)
     ls8 = np.empty(3, np.int64)
@@ -300,8 +300,9 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                 ahead = mean[c] + move
                 mu = _clamp(ahead + shift, fam.MU_LO, fam.MU_HI)
                 row = (_clamp(moved, fam.LS_LO, fam.LS_HI) - fam.LS_LO) * MEANS + mu - fam.MU_LO
+                models, at = cdfs, row  # the model: models[at]
                 if not two:
-                    cdf = row_cdf(row, counts, columns, cdfs, built, table)
+                    build_row(row, counts, columns, cdfs, built, table)
                 else:
                     k = fam.OUTPUTS + 3 * c
                     weight = _clamp(raw[b, k + 2], 0, fam.WEIGHT_ONE)
@@ -314,9 +315,10 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     row_b = ((_clamp(level_b, fam.LS_LO, fam.LS_HI) - fam.LS_LO) * MEANS
                              + mu_b - fam.MU_LO)
                     if weight == fam.WEIGHT_ONE:
-                        cdf = row_cdf(row, counts, columns, cdfs, built, table)
+                        build_row(row, counts, columns, cdfs, built, table)
                     elif weight == 0:
-                        cdf = row_cdf(row_b, counts, columns, cdfs, built, table)
+                        build_row(row_b, counts, columns, cdfs, built, table)
+                        at = row_b
                     else:
                         la, ma = row // MEANS + fam.LS_LO, row % MEANS + fam.MU_LO
                         lb, mb = row_b // MEANS + fam.LS_LO, row_b % MEANS + fam.MU_LO
@@ -325,11 +327,11 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                             other[s] = counts[columns[s] + lb * SPAN - mb]
                             table[s] = (np.float32(weight) * table[s]
                                         + np.float32(fam.WEIGHT_ONE - weight) * other[s])
-                        rangecoder.quantise(table, mixed_cdf)
-                        cdf = mixed_cdf
+                        rangecoder.quantise(table, mixed[0])
+                        models, at = mixed, 0
                 start = ends[b - 1] if b else 0
-                value = rangecoder.decode_symbol(states[b], words[start : ends[b]], cdf,
-                                                 _clamp((mu + 2) >> 2, 0, 255))
+                value = rangecoder.decode_at(states, b, words, start, ends[b], models, at,
+                                             _clamp((mu + 2) >> 2, 0, 255))
                 if value < 0:
                     return 1
                 img[b, c, y, x] = value

@@ -28,8 +28,8 @@ def cache() -> tuple[np.ndarray, ...]:
 
 
 @jit(inline="always")
-def row_cdf(row, counts, columns, cdfs, built, table):
-    """The quantised table of `all_tables()` row `row`, built on first use (`table`: 256
+def build_row(row, counts, columns, cdfs, built, table):
+    """Quantise `all_tables()` row `row` into cdfs[row] unless it is built (`table`: 256
     float32 of scratch)."""
     if not built[row]:
         level, mu4 = row // MEANS + fam.LS_LO, row % MEANS + fam.MU_LO
@@ -37,6 +37,12 @@ def row_cdf(row, counts, columns, cdfs, built, table):
             table[s] = counts[columns[s] + level * SPAN - mu4]
         rangecoder.quantise(table, cdfs[row])
         built[row] = True
+
+
+@jit
+def row_cdf(row, counts, columns, cdfs, built, table):
+    """The quantised table of `all_tables()` row `row`, built on first use."""
+    build_row(row, counts, columns, cdfs, built, table)
     return cdfs[row]
 
 
