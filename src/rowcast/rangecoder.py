@@ -222,7 +222,7 @@ def _put(words: np.ndarray, n: int, word) -> np.ndarray:
     return words
 
 
-@jit
+@jit(inline="always")
 def encode_symbol(state: np.ndarray, words: np.ndarray, cdf: np.ndarray, symbol: int):
     """Encode `symbol` with the model `cdf` (from `quantise`) as constriction's range
     encoder does; returns (the words, perhaps grown, True), or (words, False) with the

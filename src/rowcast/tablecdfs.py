@@ -40,18 +40,11 @@ def build_row(row, counts, columns, cdfs, built, table):
 
 
 @jit
-def row_cdf(row, counts, columns, cdfs, built, table):
-    """The quantised table of `all_tables()` row `row`, built on first use."""
-    build_row(row, counts, columns, cdfs, built, table)
-    return cdfs[row]
-
-
-@jit
 def _encode_rows(state, words, symbols, rows, counts, columns, cdfs, built):
     table = np.empty(256, np.float32)
     for i in range(len(symbols)):
-        cdf = row_cdf(rows[i], counts, columns, cdfs, built, table)
-        words, ok = rangecoder.encode_symbol(state, words, cdf, symbols[i])
+        build_row(rows[i], counts, columns, cdfs, built, table)
+        words, ok = rangecoder.encode_symbol(state, words, cdfs[rows[i]], symbols[i])
         if not ok:
             return words, i
     return words, -1
