@@ -123,13 +123,14 @@ def activity_planes(x: np.ndarray) -> np.ndarray:
 
 
 class Engine:
-    """Runs an IntModel with fast kernels, or with the int64 reference if the self-test fails."""
+    """Runs an IntModel with fast kernels; its float convolutions fall back to the int64
+    reference if their known-answer check fails (`self_test`, on their first use: the
+    int8 kernels that code and decode never need it, and it costs 0.08 s)."""
 
     def __init__(self, model: IntModel) -> None:
         self.model = model
         self.rows = model.layers[: model.depth]
         self.head1, self.head2, self.out = model.layers[model.depth :]
-        self.conv = conv_fast if self_test(model) else conv_reference
         # the encoder's kernels: int8 products summed in int32 where every bound allows
         self.int8 = all(layer.bound < INT32_SAFE for layer in model.layers)
         # The decoder folds each head layer's requantisation into its weights: with
@@ -155,6 +156,11 @@ class Engine:
         self._s2, self._c2 = s2, self.head2.bias * s2 + 0.5
         self._w3 = self.out.weight[:, :, 0, 0].T.astype(np.float64) * s3
         self._c3 = self.out.bias * s3 + 0.5
+
+    def conv(self, a: np.ndarray, layer: IntLayer, pad_top: bool = True) -> np.ndarray:
+        """A layer's accumulators: `conv_fast` where it passes `self_test`, else
+        `conv_reference`."""
+        return (conv_fast if self_test(self.model) else conv_reference)(a, layer, pad_top)
 
     # -- encoder: everything at once -------------------------------------------------------
     def parallel(self, x: np.ndarray) -> np.ndarray:
@@ -280,7 +286,7 @@ def _floor_to_byte(a: np.ndarray) -> np.ndarray:
 
 @functools.cache
 def self_test(model: IntModel) -> bool:
-    """Known-answer check at load: fast kernels vs the int64 reference on fixed inputs.
+    """Known-answer check on first use: fast kernels vs the int64 reference on fixed inputs.
 
     True when they agree on every layer; otherwise the engine uses the reference path.
     """
