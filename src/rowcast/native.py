@@ -38,6 +38,7 @@ import numpy as np
 
 HERE = Path(__file__).parent
 KERNEL_MODULES = ("intkernels", "rangecoder", "tablecdfs", "tuningkernel", "rowdecoder")
+CONSTANT_MODULES = ("native", "family", "tables", "feedback")  # constants the kernels read
 _I8 = "i8[::1]"
 # The entry points Python calls: name -> (module, function, the types it is called with).
 ENTRIES = {
@@ -159,7 +160,7 @@ def _cpu() -> str:
 def key() -> str:
     """What the prebuilt module depends on: the kernels' sources, Python, numpy, the CPU."""
     h = hashlib.sha256()
-    for name in (*KERNEL_MODULES, "native", "family", "tables"):
+    for name in (*KERNEL_MODULES, *CONSTANT_MODULES):
         h.update((HERE / f"{name}.py").read_bytes())
     h.update(f"{sys.version}|{np.__version__}|{platform.machine()}|{_cpu()}".encode())
     return h.hexdigest()[:16]
