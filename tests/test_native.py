@@ -5,7 +5,6 @@ all; numba's JIT, the fallback, decodes the same pixels."""
 from __future__ import annotations
 
 import os
-import shutil
 import subprocess
 import sys
 import textwrap
@@ -18,7 +17,7 @@ from rowcast import codec, native
 from rowcast.predictor import Engine
 from rowcast.quantize import load_model
 
-needs_compiler = pytest.mark.skipif(shutil.which("cc") is None and shutil.which("gcc") is None,
+needs_compiler = pytest.mark.skipif(native.compiler() is None,
                                     reason="building the kernels ahead of time needs a C compiler")
 
 
@@ -58,6 +57,34 @@ def test_a_build_is_whole_and_replaces_older_ones(tmp_path: Path) -> None:
     ours, theirs = np.empty(257, np.uint32), np.empty(257, np.uint32)
     assert module.quantise(table, ours) and native.jitted().quantise(table, theirs)
     assert np.array_equal(ours, theirs)
+
+
+def test_without_a_compiler_nothing_is_built(tmp_path: Path,
+                                            monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(native, "compiler", lambda: None)
+    monkeypatch.setattr(native, "build", lambda path: pytest.fail("built without a compiler"))
+
+    assert native.prebuilt(tmp_path / "rowcast_kernels_0000000000000000.so") is None
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_failed_build_is_recorded_and_not_tried_again(tmp_path: Path,
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A build that fails (here: its linker) leaves its reason, so the next command goes
+    straight to the JIT instead of spending the compile again."""
+    tries = []
+
+    def broken(path: Path) -> None:
+        tries.append(path)
+        raise RuntimeError("the linker failed")
+
+    monkeypatch.setattr(native, "build", broken)
+    path = tmp_path / "rowcast_kernels_0000000000000000.so"
+
+    assert native.prebuilt(path) is None and native.prebuilt(path) is None
+    assert len(tries) == 1
+    assert (tmp_path / "rowcast_kernels_0000000000000000.failed").read_text() == (
+        "RuntimeError: the linker failed\n")
 
 
 def test_the_jit_decodes_what_the_prebuilt_kernels_decode(tmp_path: Path) -> None:

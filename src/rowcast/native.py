@@ -10,8 +10,9 @@ only through `kernels()`, a namespace of the entry points in `ENTRIES`:
   kernels' sources, Python, numpy and the CPU. Later processes load it in about a
   millisecond and never import numba: this is what takes start-up from about 0.8 s to 0.3.
 * "jit": numba's just-in-time compiler (machine code cached beside the modules), where no
-  extension can be built (no C compiler), where NUMBA_CPU_NAME asks for another target (the
-  tests' portable path) or where ROWCAST_KERNELS=jit asks for it.
+  extension can be built (no C compiler; a failed build leaves its reason beside the
+  module's name, and is not tried again for the same sources), where NUMBA_CPU_NAME asks
+  for another target (the tests' portable path) or where ROWCAST_KERNELS=jit asks for it.
 
 Both compile the same functions with the same LLVM, and the integers they compute do not
 depend on it; the tests hold both against the reference decoder.
@@ -19,6 +20,7 @@ depend on it; the tests hold both against the reference decoder.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import importlib
@@ -28,6 +30,7 @@ import os
 import platform
 import shutil
 import sys
+import sysconfig
 import tempfile
 import time
 import warnings
@@ -110,16 +113,37 @@ def ready() -> bool:
 def kernels() -> SimpleNamespace:
     """The entry points of `ENTRIES`, from the prebuilt extension module (built now if this
     machine has none yet) or else compiled just in time; `.kind` says which."""
-    if _jit_wanted():
-        return jitted()
-    path = module_path()
-    try:
-        if not path.exists():
-            build(path)
-        module = load(path)
-    except Exception:  # no C compiler, a read-only cache: numba compiles them instead
+    module = None if _jit_wanted() else prebuilt(module_path())
+    if module is None:
         return jitted()
     return SimpleNamespace(kind="prebuilt", **{name: getattr(module, name) for name in ENTRIES})
+
+
+def prebuilt(path: Path):
+    """The prebuilt module at `path`, built now if it is not there; None where it cannot
+    be: no C compiler, or a build of these sources that failed before (its reason is kept
+    beside it, so later commands do not spend the compile again)."""
+    failed = path.with_name(path.name.split(".")[0] + ".failed")
+    if not path.exists():
+        if failed.exists() or compiler() is None:
+            return None
+        try:
+            build(path)
+        except Exception as exc:  # a broken tool chain, a read-only cache
+            with contextlib.suppress(OSError):
+                failed.write_text(f"{type(exc).__name__}: {exc}\n")
+            return None
+    try:
+        return load(path)
+    except ImportError:
+        return None
+
+
+def compiler() -> str | None:
+    """The C compiler that links the prebuilt module (Python's own, as extensions are
+    built with), or None if there is none."""
+    cc = os.environ.get("CC") or sysconfig.get_config_var("CC") or "cc"
+    return shutil.which(cc.split()[0])
 
 
 @functools.cache
