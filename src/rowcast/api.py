@@ -576,32 +576,37 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
     _remove_stale_stages(outdir)
     stage = Path(tempfile.mkdtemp(prefix=f"{STAGE_PREFIX}{os.getpid()}-", dir=outdir))
     failed, ready = [], []
-    pending: list[tuple[IndexEntry, Path, Content]] = []
+    pending: list[tuple[IndexEntry, Path, Picture]] = []
+
+    def put(e: IndexEntry, tmp: Path, data: bytes | ImageError) -> None:
+        try:
+            if isinstance(data, ImageError):
+                raise data
+            tmp.parent.mkdir(parents=True, exist_ok=True)
+            imagefile.write_new(tmp, data)
+        except ImageError as exc:
+            failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
+            return
+        ready.append(e)
 
     def flush() -> None:
-        """Write the pending entries into the stage, their files made on every core."""
-        pixels = sum(c.width * c.height for _, _, c in pending if isinstance(c, Picture))
-        for (e, tmp, _), data in zip(pending, map_split(_file_data, pending, pixels),
+        """Write the pending images into the stage, their files made on every core."""
+        pixels = sum(picture.width * picture.height for _, _, picture in pending)
+        for (e, tmp, _), data in zip(pending, map_split(_image_file, pending, pixels),
                                      strict=True):
-            try:
-                if isinstance(data, ImageError):
-                    raise data
-                tmp.parent.mkdir(parents=True, exist_ok=True)
-                imagefile.write_new(tmp, data)
-            except ImageError as exc:
-                failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
-                continue
-            ready.append(e)
+            put(e, tmp, data)
         pending.clear()
 
     try:
         for e, content in _contents(src, ident, kept, model, batch, progress):
             if isinstance(content, DataError):
                 failed.append(str(content))
-                continue
-            pending.append((e, stage / e.restored_path, content))
-            if len(pending) >= WRITE_CHUNK:
-                flush()
+            elif isinstance(content, Picture):
+                pending.append((e, stage / e.restored_path, content))
+                if len(pending) >= WRITE_CHUNK:
+                    flush()
+            else:  # a kept file's bytes, written at once
+                put(e, stage / e.restored_path, content)
         flush()
         written = _put_in_place([(stage / e.restored_path, targets[e.path]) for e in ready],
                                 outdir, stage)
@@ -613,17 +618,15 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
 
 
 STAGE_PREFIX = ".rowcast-stage-"  # then the pid of the decompress that made it
-WRITE_CHUNK = 256  # restored entries whose files are made together
+WRITE_CHUNK = 256  # restored images whose files are made together
 
 
-def _file_data(item: tuple[IndexEntry, Path, Content]) -> bytes | ImageError:
-    """The bytes of an entry's file (an image's in its container), or why it cannot be
+def _image_file(item: tuple[IndexEntry, Path, Picture]) -> bytes | ImageError:
+    """The bytes of a restored image's file in its container, or why it cannot be
     written there."""
-    _, path, content = item
-    if not isinstance(content, Picture):
-        return content
+    _, path, picture = item
     try:
-        return imagefile.file_bytes(content, path)
+        return imagefile.file_bytes(picture, path)
     except ImageError as exc:
         return exc
 

@@ -11,7 +11,8 @@ only through `kernels()`, a namespace of the entry points in `ENTRIES`:
   millisecond and never import numba: this is what takes start-up from about 0.8 s to 0.3.
 * "jit": numba's just-in-time compiler (machine code cached beside the modules), where no
   extension can be built (no C compiler; a failed build leaves its reason beside the
-  module's name, and is not tried again for the same sources), where NUMBA_CPU_NAME asks
+  module's name, `rowcast_kernels_<key>.failed`, and is not tried again for the same
+  sources until that file is deleted), where NUMBA_CPU_NAME asks
   for another target (the tests' portable path) or where ROWCAST_KERNELS=jit asks for it.
 
 Both compile the same functions with the same LLVM, and the integers they compute do not
