@@ -12,8 +12,8 @@ only through `kernels()`, a namespace of the entry points in `ENTRIES`:
 * "jit": numba's just-in-time compiler (machine code cached beside the modules), where no
   extension can be built (no C compiler; a failed build leaves its reason beside the
   module's name, `rowcast_kernels_<key>.failed`, and is not tried again for the same
-  sources until that file is deleted), where NUMBA_CPU_NAME asks
-  for another target (the tests' portable path) or where ROWCAST_KERNELS=jit asks for it.
+  sources until that file is deleted), where NUMBA_CPU_NAME asks for another target (the
+  tests' portable path) or where ROWCAST_KERNELS=jit asks for it.
 
 Both compile the same functions with the same LLVM, and the integers they compute do not
 depend on it; the tests hold both against the reference decoder.
@@ -124,7 +124,7 @@ def prebuilt(path: Path):
     """The prebuilt module at `path`, built now if it is not there; None where it cannot
     be: no C compiler, or a build of these sources that failed before (its reason is kept
     beside it, so later commands do not spend the compile again)."""
-    failed = path.with_name(path.name.split(".")[0] + ".failed")
+    failed = path.with_name(_module_name(path) + ".failed")
     if not path.exists():
         if failed.exists() or compiler() is None:
             return None
@@ -206,10 +206,14 @@ def module_path() -> Path:
     return cache_dir() / (name + importlib.machinery.EXTENSION_SUFFIXES[0])
 
 
+def _module_name(path: Path) -> str:
+    """The module a prebuilt file holds: its name up to the first dot."""
+    return path.name.split(".")[0]
+
+
 def load(path: Path):
     """Import a prebuilt module from its file."""
-    name = path.name.split(".")[0]
-    spec = importlib.util.spec_from_file_location(name, path)
+    spec = importlib.util.spec_from_file_location(_module_name(path), path)
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return module
@@ -233,7 +237,7 @@ def build(path: Path) -> None:
             warnings.simplefilter("ignore")  # numba marks its AOT compiler as pending removal
             from numba.pycc import CC
 
-            cc = CC(path.name.split(".")[0], source_module=__name__)
+            cc = CC(_module_name(path), source_module=__name__)
             cc.output_dir = str(work)
             cc.target_cpu = "host"
             for name, (module, function, signature) in ENTRIES.items():
