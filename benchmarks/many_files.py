@@ -28,7 +28,7 @@ from PIL import Image
 HERE = Path(__file__).parent
 PHOTOS = HERE.parent.parent / "shared" / "corpus" / "thumbs" / "photo"
 SIDE = 64
-ENTRY = [sys.executable, "-c", "from rowcast.cli import main; main()"]
+ENTRY = [sys.executable, "-c", "from rowcast.launch import main; main()"]
 
 
 def thumbnails(count: int) -> list[Image.Image]:

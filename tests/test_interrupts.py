@@ -21,7 +21,7 @@ from PIL import Image
 
 from rowcast import cli
 
-ENTRY = [sys.executable, "-c", "from rowcast.cli import main; main()"]
+ENTRY = [sys.executable, "-c", "from rowcast.launch import main; main()"]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1"}
 
 

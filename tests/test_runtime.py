@@ -49,10 +49,10 @@ def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
     for args in (["--help"], ["list", str(tmp_path / "a.rowcast")]):
         script = textwrap.dedent(f"""
             import sys
-            from rowcast import cli
+            from rowcast import launch
             sys.argv = ["rowcast", *{args!r}]
             try:
-                cli.main()
+                launch.main()
             except SystemExit:
                 pass
             print(sorted({{m.split(".")[0] for m in sys.modules}} & {{"numba", "torch"}}))
@@ -61,6 +61,34 @@ def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
 
         assert result.returncode == 0, result.stderr
         assert result.stdout.strip().splitlines()[-1] == "[]", args
+
+
+@pytest.mark.parametrize("setting", [None, "2"])
+def test_the_command_keeps_numpys_blas_to_one_thread(setting: str | None) -> None:
+    """The command's parallel work is forked single-threaded processes; BLAS threads beside
+    them only spin. `rowcast` keeps OpenBLAS (numpy's BLAS) to one thread, unless the user
+    sets OPENBLAS_NUM_THREADS: then it has what plain numpy has. Read through threadpoolctl."""
+    report = ('from threadpoolctl import threadpool_info\n'
+              'print([i["num_threads"] for i in threadpool_info() '
+              'if i["internal_api"] == "openblas"])')
+    command = textwrap.dedent("""
+        import sys
+        from rowcast import launch
+        sys.argv = ["rowcast", "--help"]
+        try:
+            launch.main()
+        except SystemExit:
+            pass
+    """) + report
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    if setting is not None:
+        env["OPENBLAS_NUM_THREADS"] = setting
+    seen = [subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                           env=env) for script in (command, "import numpy\n" + report)]
+
+    assert all(r.returncode == 0 for r in seen), seen[0].stderr + seen[1].stderr
+    rowcast_threads, numpy_threads = (r.stdout.strip().splitlines()[-1] for r in seen)
+    assert rowcast_threads == ("[1]" if setting is None else numpy_threads)
 
 
 @pytest.mark.parametrize("kernels", ["prebuilt", "jit"])

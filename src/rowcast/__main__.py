@@ -1,5 +1,5 @@
 """`python -m rowcast` runs the command line."""
 
-from rowcast.cli import main
+from rowcast.launch import main
 
 main()
