@@ -578,23 +578,19 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
     failed, ready = [], []
     pending: list[tuple[IndexEntry, Path, Picture]] = []
 
-    def put(e: IndexEntry, tmp: Path, data: bytes | ImageError) -> None:
-        try:
-            if isinstance(data, ImageError):
-                raise data
-            tmp.parent.mkdir(parents=True, exist_ok=True)
-            imagefile.write_new(tmp, data)
-        except ImageError as exc:
-            failed.append(f"{src}: {e.path}: {_reason(exc, tmp)}")
-            return
-        ready.append(e)
+    def record(e: IndexEntry, tmp: Path, error: ImageError | None) -> None:
+        if error is None:
+            ready.append(e)
+        else:
+            failed.append(f"{src}: {e.path}: {_reason(error, tmp)}")
 
     def flush() -> None:
-        """Write the pending images into the stage, their files made on every core."""
+        """Write the pending images into the stage, each file made and written on one of
+        the cores."""
         pixels = sum(picture.width * picture.height for _, _, picture in pending)
-        for (e, tmp, _), data in zip(pending, map_split(_image_file, pending, pixels),
-                                     strict=True):
-            put(e, tmp, data)
+        for (e, tmp, _), error in zip(pending, map_split(_write_image, pending, pixels),
+                                      strict=True):
+            record(e, tmp, error)
         pending.clear()
 
     try:
@@ -606,7 +602,7 @@ def decompress(src: Path | str, outdir: Path | str, *, model: Path | str | None 
                 if len(pending) >= WRITE_CHUNK:
                     flush()
             else:  # a kept file's bytes, written at once
-                put(e, stage / e.restored_path, content)
+                record(e, stage / e.restored_path, _write(stage / e.restored_path, content))
         flush()
         written = _put_in_place([(stage / e.restored_path, targets[e.path]) for e in ready],
                                 outdir, stage)
@@ -621,14 +617,25 @@ STAGE_PREFIX = ".rowcast-stage-"  # then the pid of the decompress that made it
 WRITE_CHUNK = 256  # restored images whose files are made together
 
 
-def _image_file(item: tuple[IndexEntry, Path, Picture]) -> bytes | ImageError:
-    """The bytes of a restored image's file in its container, or why it cannot be
-    written there."""
-    _, path, picture = item
+def _write(path: Path, data: bytes) -> ImageError | None:
+    """Write a new file in the stage, its folders made as needed; why it failed, if it
+    did."""
     try:
-        return imagefile.file_bytes(picture, path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        imagefile.write_new(path, data)
     except ImageError as exc:
         return exc
+    return None
+
+
+def _write_image(item: tuple[IndexEntry, Path, Picture]) -> ImageError | None:
+    """Write a restored image's file in its container; why it cannot be written, if so."""
+    _, path, picture = item
+    try:
+        data = imagefile.file_bytes(picture, path)
+    except ImageError as exc:
+        return exc
+    return _write(path, data)
 
 
 def _remove_stale_stages(outdir: Path) -> None:
