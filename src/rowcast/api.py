@@ -40,8 +40,8 @@ from rowcast.quantize import IntModel, ModelError, bundled_model, load_model, mo
 from rowcast.workers import map_split
 
 DEFAULT_BATCH = entrycodec.BATCH
-GROUP_IMAGES = 128  # images read and coded together while compressing
-GROUP_PIXELS = 1 << 22  # ... or at most about this many pixels
+GROUP_IMAGES = 256  # images read and coded together while compressing
+GROUP_PIXELS = 1 << 22  # ... or at most this many pixels (one larger image alone)
 STRIPPED = "metadata stripped (--strip-metadata)"
 UNWRITABLE = "an image that no container rowcast writes holds exactly; kept byte for byte"
 
@@ -52,13 +52,15 @@ Progress = Callable[[int], None] | None  # called with the number of images or r
 class Found:
     """A file under the inputs and what will become of it: `action` is "image", "bytes",
     "excluded", "refused" or "empty folder", with the reason for the last four; `link` is
-    where a symbolic link to a file points (it is archived as that file's content)."""
+    where a symbolic link to a file points (it is archived as that file's content);
+    `pixels`, an image's pixel count from its header."""
 
     path: Path
     name: str
     action: str
     reason: str = ""
     link: str | None = None
+    pixels: int = 0
 
 
 @dataclass(frozen=True)
@@ -225,7 +227,8 @@ def collect_inputs(inputs: Sequence[Path | str], exclude: Sequence[str] = ()) ->
                 found.append(Found(path, name, "refused", _reason(exc, path)))
                 continue
             link = os.readlink(path) if path.is_symlink() else None
-            found.append(Found(path, name, sniffed.action, sniffed.reason, link))
+            found.append(Found(path, name, sniffed.action, sniffed.reason, link,
+                               sniffed.width * sniffed.height))
     return found
 
 
@@ -286,22 +289,27 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
 
     def entries() -> Iterator[Entry]:
         """Kept and left-out files at once; images a group at a time, coded together."""
-        group: list[tuple[Found, Picture]] = []
+        group: list[Found] = []
         pixels = 0
 
         def flush() -> Iterator[Entry]:
-            """The group's entries: whether each picture can be restored is checked on
-            every core (`imagefile.restored`, a write and read back in memory); those that
-            cannot are kept as bytes."""
-            plans = map_split(lambda fp: imagefile.restored(fp[0].name, fp[1]), group, pixels)
+            """The group's entries: each picture is read and whether it can be restored
+            checked (`imagefile.restored`, a write and read back in memory) on every core;
+            those that cannot be restored are kept as bytes."""
             able = []
-            for (f, _), plan in zip(group, plans, strict=True):
-                if plan is None:
+            readied = map_split(lambda f: _readied(f, strip_metadata), group, pixels)
+            for f, got in zip(group, readied, strict=True):
+                if isinstance(got, ImageError):
+                    if not leave_out_refused:
+                        raise RefusedError([str(got)])
+                    yield _left_out(f.name, _reason(got, f.path), rows)
+                elif got is None:
                     yield _kept(replace(f, action="bytes", reason=UNWRITABLE), rows)
-                    if progress:
-                        progress(1)
                 else:
-                    able.append((f, *plan))
+                    able.append((f, *got))
+                    continue
+                if progress:
+                    progress(1)
             yield from _coded(engine, able, strip_metadata, rows, progress, quick,
                               None if engine is base else base, payloads)
 
@@ -311,20 +319,11 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
             elif f.action != "image":
                 yield _left_out(f.name, f.reason, rows)
             else:
-                try:
-                    picture = imagefile.read_picture(f.path)
-                except ImageError as exc:
-                    if not leave_out_refused:
-                        raise RefusedError([str(exc)]) from None
-                    yield _left_out(f.name, _reason(exc, f.path), rows)
-                    continue
-                if strip_metadata:
-                    picture = picture.without_metadata()
-                group.append((f, picture))
-                pixels += picture.width * picture.height
-                if len(group) >= GROUP_IMAGES or pixels >= GROUP_PIXELS:
+                if group and (len(group) >= GROUP_IMAGES or pixels + f.pixels > GROUP_PIXELS):
                     yield from flush()
                     group, pixels = [], 0
+                group.append(f)
+                pixels += f.pixels
                 continue
             if progress:
                 progress(1)
@@ -357,6 +356,17 @@ def compress(inputs: Sequence[Path | str], dest: Path | str, *, model: Path | st
                            embed_model=asked_embed)
         return replace(summary, adaptation=adaptation)
     return Summary(dest, ident, rows, size, adaptation)
+
+
+def _readied(f: Found, strip_metadata: bool) -> tuple[str, Picture] | ImageError | None:
+    """A found image's picture (without its metadata if so asked) and the name it is
+    restored under (`imagefile.restored`), None when it cannot be restored, or the
+    ImageError that stops it being read."""
+    try:
+        picture = imagefile.read_picture(f.path)
+    except ImageError as exc:
+        return exc
+    return imagefile.restored(f.name, picture.without_metadata() if strip_metadata else picture)
 
 
 ADAPT_PIXELS = 1 << 26  # pixels read to adapt on at most (the first images in path order)
