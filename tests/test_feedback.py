@@ -5,6 +5,7 @@ as documented, mean moves round down, and level moves stay on the family's grid.
 import decimal
 
 import numpy as np
+import pytest
 
 from rowcast import family as fam
 from rowcast.feedback import (
@@ -12,14 +13,13 @@ from rowcast.feedback import (
     DISTANCES,
     NEUTRAL,
     Q_MAX,
-    error_sums,
     feedback_table,
     mean_moves,
     move,
-    neighbour_sums,
     surprise_table,
     surprises,
 )
+from rowcast.tuningkernel import feedback_arrays
 
 CTX = decimal.Context(prec=50)
 
@@ -64,18 +64,58 @@ def test_feedback_is_zero_for_a_miss_of_one_scale_and_follows_its_definition():
         assert (np.diff(table) >= 0).all()
 
 
-def test_a_subpixels_sum_counts_left_above_and_the_earlier_planes_of_its_pixel():
-    """Against a plain loop: same plane left and above (NEUTRAL outside the image), plus
+def image_feedback(h: int, w: int, planes: int, seed: int) -> tuple:
+    """Random inputs of `feedback_arrays` for an h x w image, and its three arrays."""
+    rng = np.random.default_rng(seed)
+    n = h * w
+    inputs = (rng.integers(fam.MU_LO, fam.MU_HI + 1, (n, 3)),  # means
+              rng.integers(-fam.COUPLE_MAX, fam.COUPLE_MAX + 1, (n, 3)),  # couplings
+              rng.integers(-255, 256, (n, 3)),  # residuals
+              rng.integers(0, 256, (n, planes)),  # values
+              rng.integers(fam.LS_LO, fam.LS_HI + 1, (n, 3)),  # levels
+              rng.integers(-8, 8, 3))  # bias gains
+    return inputs, feedback_arrays(*inputs, w)
+
+
+def coupled_means(means, couplings, residuals, c: int) -> np.ndarray:
+    """Plane c's means moved by the channel couplings (floor((k r + 8) / 16))."""
+    moves = [0, (couplings[:, 0] * residuals[:, 0] + 8) // 16,
+             (couplings[:, 1] * residuals[:, 0] + couplings[:, 2] * residuals[:, 1] + 8) // 16]
+    return means[:, c] + moves[c]
+
+
+@pytest.mark.parametrize(("h", "w", "planes"), [(5, 6, 3), (1, 7, 3), (6, 1, 1), (4, 4, 1)])
+def test_a_subpixels_error_sum_is_its_left_and_upper_neighbours_errors(h, w, planes):
+    """Against a plain loop: the same plane's errors 4v - m (m: the mean moved by the
+    channel couplings) at the left and upper pixels, 0 outside the image; the planes of
+    the pixel itself do not count. The bias gain's move is floor((b S + 16) / 32) of it."""
+    (means, couplings, residuals, values, _, biases), (sums, moved, _) = image_feedback(
+        h, w, planes, h * w)
+    for c in range(planes):
+        e = (4 * values[:, c] - coupled_means(means, couplings, residuals, c)).reshape(h, w)
+        for y in range(h):
+            for x in range(w):
+                want = (e[y, x - 1] if x else 0) + (e[y - 1, x] if y else 0)
+                assert sums[y * w + x, c] == want
+                assert moved[y * w + x, c] == (biases[c] * want + 16) // 32
+
+
+@pytest.mark.parametrize(("h", "w", "planes"), [(5, 6, 3), (1, 7, 3), (6, 1, 1), (4, 4, 1)])
+def test_a_subpixels_sum_counts_left_above_and_the_earlier_planes_of_its_pixel(h, w, planes):
+    """Against a plain loop: the surprises (measured from the mean moved by the couplings
+    and the bias gain) of the same plane left and above (NEUTRAL outside the image), plus
     every plane before it at the same pixel."""
-    rng = np.random.default_rng(3)
-    q = rng.integers(0, Q_MAX + 1, (3, 5, 6))
-    sums = neighbour_sums(q)
-    for c in range(3):
-        for y in range(5):
-            for x in range(6):
+    (means, couplings, residuals, values, levels, _), (_, moved, sums) = image_feedback(
+        h, w, planes, h * w + 1)
+    q = np.stack([surprises(levels[:, c], np.clip(coupled_means(means, couplings, residuals, c)
+                                                  + moved[:, c], fam.MU_LO, fam.MU_HI),
+                            values[:, c]).reshape(h, w) for c in range(planes)])
+    for c in range(planes):
+        for y in range(h):
+            for x in range(w):
                 left = q[c, y, x - 1] if x else NEUTRAL
                 up = q[c, y - 1, x] if y else NEUTRAL
-                assert sums[c, y, x] == left + up + q[:c, y, x].sum()
+                assert sums[y * w + x, c] == left + up + q[:c, y, x].sum()
     assert sums.max() <= 4 * Q_MAX
 
 
@@ -89,19 +129,6 @@ def test_moves_widen_after_surprises_narrow_after_hits_and_stay_on_the_grid():
     assert move(levels, np.zeros(4, np.int64), 15).tolist() == levels.tolist()
     assert surprises(np.array([0, 8]), np.array([400, 400]), np.array([101, 110])).tolist() == [
         4, min(Q_MAX, int(np.floor(40 * np.exp(-1) + 0.5)))]
-
-
-def test_a_subpixels_error_sum_is_its_left_and_upper_neighbours_errors():
-    """Against a plain loop: the same plane's errors at the left and upper pixels, 0 outside
-    the image; the planes of the pixel itself do not count."""
-    rng = np.random.default_rng(4)
-    e = rng.integers(-1000, 1000, (3, 4, 5))
-    sums = error_sums(e)
-    for c in range(3):
-        for y in range(4):
-            for x in range(5):
-                want = (e[c, y, x - 1] if x else 0) + (e[c, y - 1, x] if y else 0)
-                assert sums[c, y, x] == want
 
 
 def test_mean_moves_are_the_floor_of_gain_times_errors_over_32():

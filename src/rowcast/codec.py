@@ -223,15 +223,10 @@ class Feedback:
     def of(cls, p: Params, known: np.ndarray, residuals: np.ndarray, shape: tuple[int, int],
            biases: np.ndarray) -> Feedback:
         """From an image's tuned parameters, values (N, P), residuals (N, 3) and biases."""
-        planes = known.shape[1]
-        means = [p.means[:, c] + coupling_move(p.couplings, c, residuals) for c in range(planes)]
-        errors = np.stack([4 * known[:, c] - means[c] for c in range(planes)])
-        errors = feedback.error_sums(errors.reshape(-1, *shape)).reshape(planes, -1).T
-        moved = feedback.mean_moves(errors, biases[:planes])
-        q = [feedback.surprises(p.ls8[:, c], _on_grid(means[c] + moved[:, c]), known[:, c])
-             for c in range(planes)]
-        sums = feedback.neighbour_sums(np.stack(q).reshape(-1, *shape)).reshape(planes, -1).T
-        return cls(errors, moved, sums)
+        from rowcast.tuningkernel import feedback_arrays  # numba: only when coding
+
+        return cls(*feedback_arrays(p.means, p.couplings, residuals, known, p.ls8, biases,
+                                    shape[1]))
 
     def band(self, pixels: slice) -> Feedback:
         """The feedback of some of the pixels (a band of rows)."""

@@ -20,7 +20,9 @@ over-shooting), and a pixel's channels miss together. Two integer signals carry 
   hits, the more so the larger k.
 
 The surprise tables are integers computed with Python's decimal arithmetic, which is
-correctly rounded and the same everywhere; at run time everything is integer numpy.
+correctly rounded and the same everywhere; at run time everything is integer arithmetic.
+The encoder computes a whole image's feedback in one compiled pass
+(`tuningkernel.feedback_arrays`), the decoders pixel by pixel.
 """
 
 from __future__ import annotations
@@ -73,21 +75,6 @@ def feedback_table(terms: int) -> np.ndarray:
 def surprises(levels: np.ndarray, means: np.ndarray, values: np.ndarray) -> np.ndarray:
     """q of subpixels from their tuned levels, final means (quarter pixels) and values."""
     return surprise_table()[levels - fam.LS_LO, np.abs(4 * values.astype(np.int64) - means)]
-
-
-def neighbour_sums(q: np.ndarray) -> np.ndarray:
-    """S of every subpixel of an image from the surprises q (P, H, W) of its planes: the
-    same plane's left and upper neighbours plus the planes before it in the pixel."""
-    padded = np.pad(q, ((0, 0), (1, 0), (1, 0)), constant_values=NEUTRAL)
-    earlier = np.cumsum(q, axis=0) - q
-    return padded[:, :-1, 1:] + padded[:, 1:, :-1] + earlier
-
-
-def error_sums(e: np.ndarray) -> np.ndarray:
-    """e_left + e_up of every subpixel of an image from the errors e (P, H, W) of its planes,
-    0 outside the image."""
-    padded = np.pad(e, ((0, 0), (1, 0), (1, 0)))
-    return padded[:, :-1, 1:] + padded[:, 1:, :-1]
 
 
 def mean_moves(sums: np.ndarray, biases: np.ndarray | int) -> np.ndarray:

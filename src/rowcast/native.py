@@ -64,6 +64,9 @@ ENTRIES = {
     "lengths": ("tuningkernel", "_lengths",
                 f"void({_I8}, {_I8}, {_I8}, {_I8}, i8[:,::1], i8[:,::1], {_I8}, i8[:,::1])"),
     "coupled_sums": ("tuningkernel", "_coupled_sums", f"void({', '.join([_I8] * 11)})"),
+    "feedback": ("tuningkernel", "_feedback", "void(i8[:,::1], i8[:,::1], i8[:,::1], "
+                 "i8[:,::1], i8[:,::1], i8[::1], i8, i8[:,::1], i8[:,::1], i8[:,::1], "
+                 "i8[:,::1])"),
     "head_rows": ("rowdecoder", "_head_rows",
                   "i4[:,:,::1](u1[:,:,::1], i1[::1], i8[:,::1], i8[:,::1])"),
     "row": ("rowdecoder", "_row",

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from rowcast import family as fam
-from rowcast import native
+from rowcast import feedback, native
 from rowcast.native import jit
 from rowcast.tables import SPAN
 
@@ -83,3 +83,48 @@ def coupled_sums(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
     native.kernels().coupled_sums(*_flat(lengths, columns, levels, means, *couplings,
                                          *residuals, da, db), out)
     return out
+
+
+@jit
+def _feedback(means, couplings, residuals, known, ls8, biases, width, surprise, errors, moved,
+              sums):
+    n, planes = known.shape
+    raw = np.empty((n, planes), np.int64)  # each subpixel's own error 4v - m
+    q = np.empty((n, planes), np.int64)  # and surprise
+    for i in range(n):
+        x = i % width
+        for c in range(planes):
+            if c == 0:
+                move = 0
+            elif c == 1:
+                move = (couplings[i, 0] * residuals[i, 0] + 8) >> 4
+            else:
+                move = (couplings[i, 1] * residuals[i, 0] + couplings[i, 2] * residuals[i, 1]
+                        + 8) >> 4
+            mean = means[i, c] + move
+            raw[i, c] = 4 * known[i, c] - mean
+            e = (raw[i - 1, c] if x else 0) + (raw[i - width, c] if i >= width else 0)
+            errors[i, c] = e
+            moved[i, c] = (biases[c] * e + 16) >> 5
+            mu = min(max(mean + moved[i, c], fam.MU_LO), fam.MU_HI)
+            q[i, c] = surprise[ls8[i, c] - fam.LS_LO, abs(4 * known[i, c] - mu)]
+            total = ((q[i - 1, c] if x else feedback.NEUTRAL)
+                     + (q[i - width, c] if i >= width else feedback.NEUTRAL))
+            for earlier in range(c):
+                total += q[i, earlier]
+            sums[i, c] = total
+
+
+def feedback_arrays(means: np.ndarray, couplings: np.ndarray, residuals: np.ndarray,
+                    known: np.ndarray, ls8: np.ndarray, biases: np.ndarray,
+                    width: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """An image's feedback in one pass over its subpixels, in raster order (`feedback`'s
+    definitions): (e_left + e_up, the mean moves of the bias gains, the surprises' sums S),
+    each (N, P) int64. means, couplings, residuals and ls8 are (N, 3); known, the values,
+    (N, P); biases (3,). A subpixel's error is 4v - m, m its mean moved by the channel
+    couplings; its surprise is measured from that mean moved by the bias gain."""
+    shape = known.shape
+    errors, moved, sums = (np.empty(shape, np.int64) for _ in range(3))
+    native.kernels().feedback(*_flat(means, couplings, residuals, known, ls8, biases), width,
+                              feedback.surprise_table(), errors, moved, sums)
+    return errors, moved, sums
