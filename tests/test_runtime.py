@@ -43,7 +43,8 @@ def test_coding_and_decoding_import_no_torch(tmp_path: Path) -> None:
 
 def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
     """`rowcast --help` and `rowcast list` start fast: they import neither torch nor numba
-    (numba's import and first call cost about half a second; only coding needs them)."""
+    (numba's import and first call cost about half a second; only coding needs them), nor
+    tifffile (13 ms; only TIFF files need it)."""
     Image.fromarray(np.zeros((4, 4), np.uint8)).save(tmp_path / "a.png")
     rowcast.compress([tmp_path / "a.png"], tmp_path / "a.rowcast", model=TINY)
     for args in (["--help"], ["list", str(tmp_path / "a.rowcast")]):
@@ -55,7 +56,8 @@ def test_listing_and_help_load_no_compiler(tmp_path: Path) -> None:
                 launch.main()
             except SystemExit:
                 pass
-            print(sorted({{m.split(".")[0] for m in sys.modules}} & {{"numba", "torch"}}))
+            print(sorted({{m.split(".")[0] for m in sys.modules}}
+                         & {{"numba", "torch", "tifffile"}}))
         """)
         result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
 

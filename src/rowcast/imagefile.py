@@ -31,6 +31,7 @@ effort, plain PNM written raw, strip layout) is said in `Picture.notes`.
 
 from __future__ import annotations
 
+import functools
 import io
 import struct
 import zlib
@@ -41,11 +42,19 @@ from typing import BinaryIO
 
 import imagecodecs
 import numpy as np
-import tifffile
 from PIL import Image
 
 from rowcast.picture import PALETTE, TRANSPARENCY, Picture, interleaved, validate
 from rowcast.pixelformats import pixel_format
+
+
+@functools.cache
+def _tifffile():
+    """tifffile, imported when a TIFF file is first met: 13 ms of every command's start-up
+    that only TIFF files need."""
+    import tifffile
+
+    return tifffile
 
 MAX_BYTES = 1 << 31  # the largest picture, in bytes of values, that a reader allocates
 
@@ -338,19 +347,19 @@ _TIFF_JPEG = {6, 7, 34892}
 
 def _tiff_tag_name(code: int) -> str:
     try:
-        return tifffile.TIFF.TAGS[code]
+        return _tifffile().TIFF.TAGS[code]
     except KeyError:
         return str(code)
 
 
 def _sniff_tiff(f: BinaryIO) -> Sniffed:
     try:
-        with tifffile.TiffFile(f) as tif:
+        with _tifffile().TiffFile(f) as tif:
             pages = len(tif.pages)
             if pages > 1:
                 return _refused("tiff", f"has {pages} pages")
             return _tiff_verdict(tif.pages[0])
-    except (tifffile.TiffFileError, ValueError, IndexError, struct.error, OSError) as exc:
+    except (_tifffile().TiffFileError, ValueError, IndexError, struct.error, OSError) as exc:
         raise _Bad(f"unreadable TIFF ({exc})") from None
 
 
@@ -377,13 +386,13 @@ def _tiff_verdict(page) -> Sniffed:
               (2, 4, 8): "RGBA", (2, 4, 16): "RGBA16", (3, 1, 8): "P"}
     name = shapes.get((photometric, spp, bits))
     if name is None or (spp - len(extra)) not in (1, 3):
-        kind = _enum_name(tifffile.PHOTOMETRIC, photometric)
+        kind = _enum_name(_tifffile().PHOTOMETRIC, photometric)
         if photometric in (0, 3):
             return _kept("tiff", f"{kind} TIFF with {spp} x {bits} bits cannot be rewritten")
         return _refused("tiff", f"{kind} images with {spp} x {bits}-bit samples are not "
                         "supported")
     if compression not in _TIFF_WRITABLE_COMPRESSION:
-        name = _enum_name(tifffile.COMPRESSION, compression)
+        name = _enum_name(_tifffile().COMPRESSION, compression)
         return _kept("tiff", f"TIFF compression {name} cannot be rewritten")
     lost = _tiff_unwritable(page)
     if lost:
@@ -445,7 +454,7 @@ def _little_endian(tag, byteorder: str) -> bytes:
 
 
 def _decode_tiff(data: bytes) -> Picture:
-    with tifffile.TiffFile(io.BytesIO(data)) as tif:
+    with _tifffile().TiffFile(io.BytesIO(data)) as tif:
         page = tif.pages[0]
         verdict = _tiff_verdict(page)
         if verdict.action != "image":
@@ -527,7 +536,7 @@ def _encode_tiff(picture: Picture) -> bytes:
         extratags.append((code, data[0], None, data[1:], True))
     array = interleaved(v).astype(bool) if fmt.bits == 1 else interleaved(v)
     out = io.BytesIO()
-    tifffile.imwrite(out, array, byteorder="<", extratags=extratags,
+    _tifffile().imwrite(out, array, byteorder="<", extratags=extratags,
                      **options)
     written = bytearray(out.getvalue())
     if "resolution" in options:

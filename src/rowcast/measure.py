@@ -33,7 +33,6 @@ from pathlib import Path
 
 import imagecodecs
 import numpy as np
-import tifffile
 from PIL import Image, features
 
 from rowcast import imagefile
@@ -146,6 +145,8 @@ def _tiff_encode(picture: Picture) -> bytes:
 def _tiff_decode(data: bytes, picture: Picture) -> Picture:
     """tifffile as an independent reader of Pillow's TIFF; a colour map's 16-bit entries
     back to 8 bits."""
+    import tifffile  # only here: every command imports this module for its codec names
+
     with tifffile.TiffFile(io.BytesIO(data)) as tif:
         page = tif.pages[0]
         values = page.asarray()
