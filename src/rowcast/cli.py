@@ -19,14 +19,6 @@ from typing import Annotated
 import typer
 from rich import box
 from rich.console import Console
-from rich.progress import (
-    BarColumn,
-    MofNCompleteColumn,
-    Progress,
-    TextColumn,
-    TimeElapsedColumn,
-    TimeRemainingColumn,
-)
 from rich.table import Table
 
 from rowcast import api, costmap, imagefile, measure
@@ -84,6 +76,15 @@ def _bar(label: str, total: int, quiet: bool) -> Iterator:
     if quiet or not err.is_terminal:
         yield None
         return
+    from rich.progress import (  # only for a terminal: 8 ms of start-up
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
+
     columns = (TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                TextColumn("left"), TimeRemainingColumn())
     with Progress(*columns, console=err, transient=True) as bar:
