@@ -222,18 +222,6 @@ def unpack(header: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarra
     return offsets, couplings, _unsigned_nibbles(tail)[:3], _signed_nibbles(tail)[3:]
 
 
-def band_sums(lengths: np.ndarray, bands: np.ndarray) -> np.ndarray:
-    """(K, bands) integer sums of code lengths (K, N) over the subpixels of each band
-    (bands (N,)): 0 for a band with none."""
-    order = np.argsort(bands, kind="stable")
-    starts = np.searchsorted(bands[order], np.arange(len(BANDS) + 1))
-    grouped = np.zeros((len(lengths), len(bands) + 1), np.int64)  # a last column of 0
-    grouped[:, :-1] = lengths[:, order]
-    sums = np.add.reduceat(grouped, starts, axis=1)
-    sums[:, np.diff(np.append(starts, len(bands))) == 0] = 0
-    return sums
-
-
 def choose(cost, levels: np.ndarray, price: np.ndarray | None = None
            ) -> tuple[np.ndarray, float]:
     """(offsets (3, 8) that minimise the code length band by band, bits saved by them).
@@ -250,7 +238,9 @@ def choose(cost, levels: np.ndarray, price: np.ndarray | None = None
     candidates = OFFSETS[order]  # zero first
     saved = 0.0
     for c in range(levels.shape[1]):
-        per_band = band_sums(cost(c, candidates[:, None]), band_of(levels[:, c]))
+        in_band = (band_of(levels[:, c])[:, None] == np.arange(len(BANDS) + 1)).astype(float)
+        # (offsets, bands); float64 BLAS sums integer costs exactly (all below 2**53)
+        per_band = cost(c, candidates[:, None]).astype(float) @ in_band
         best = np.argmin(per_band if price is None else per_band + price[:, order].T, axis=0)
         offsets[c] = candidates[best]
         saved += float((per_band[0] - per_band[best, np.arange(len(best))]).sum())
