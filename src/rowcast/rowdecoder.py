@@ -245,6 +245,17 @@ def _clamp(v, lo, hi):
     return min(max(v, lo), hi)
 
 
+@jit(inline="always")
+def channel_move(c, k0, k1, k2, r0, r1):
+    """How far the channel couplings k (G<-R, B<-R, B<-G) move plane c's mean, from the
+    residuals r0, r1 of R and G: floor((k r + 8) / 16), as `codec.coupling_move`."""
+    if c == 0:
+        return 0
+    if c == 1:
+        return (k0 * r0 + 8) >> 4
+    return (k1 * r0 + k2 * r1 + 8) >> 4
+
+
 @jit
 def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
          origin, couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
@@ -280,12 +291,7 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     cp[c] = _clamp(cp[c] + couplings[b, c], -fam.COUPLE_MAX, fam.COUPLE_MAX)
             earlier = 0
             for c in range(planes):
-                if c == 0:
-                    move = 0
-                elif c == 1:
-                    move = (cp[0] * res[0] + 8) >> 4
-                else:
-                    move = (cp[1] * res[0] + cp[2] * res[1] + 8) >> 4
+                move = channel_move(c, cp[0], cp[1], cp[2], res[0], res[1])
                 offset = levels[origin[b, c] + ls8[c]] if tuned else 0
                 level = _clamp(ls8[c] + offset, fam.LS_LO, fam.LS_HI)  # tuned
                 shift, feedback_f = 0, 0

@@ -14,6 +14,7 @@ import numpy as np
 from rowcast import family as fam
 from rowcast import feedback, native
 from rowcast.native import jit
+from rowcast.rowdecoder import channel_move
 from rowcast.tables import SPAN
 
 
@@ -94,14 +95,9 @@ def _feedback(means, couplings, residuals, known, ls8, biases, width, surprise, 
     for i in range(n):
         x = i % width
         for c in range(planes):
-            if c == 0:
-                move = 0
-            elif c == 1:
-                move = (couplings[i, 0] * residuals[i, 0] + 8) >> 4
-            else:
-                move = (couplings[i, 1] * residuals[i, 0] + couplings[i, 2] * residuals[i, 1]
-                        + 8) >> 4
-            mean = means[i, c] + move
+            mean = means[i, c] + channel_move(c, couplings[i, 0], couplings[i, 1],
+                                              couplings[i, 2], residuals[i, 0],
+                                              residuals[i, 1])
             raw[i, c] = 4 * known[i, c] - mean
             e = (raw[i - 1, c] if x else 0) + (raw[i - width, c] if i >= width else 0)
             errors[i, c] = e
