@@ -116,9 +116,9 @@ def _piece(method: str, data: bytes) -> bytes:
 def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
                     workers: int | None = None, quick: bool = False) -> list[Encoded]:
     """The shortest payload of each picture (`Encoded`); same-sized predictor pieces of
-    all the pictures are coded together, and their PNG fallbacks made on every core (as
-    the coding is). `engine` None codes without the predictor; `quick`: without
-    `codec.tuning_of`'s second search."""
+    all the pictures are coded together, and their fallbacks (`_fallbacks`: PNG, zlib)
+    made on every core, as the coding is. `engine` None codes without the predictor;
+    `quick`: without `codec.tuning_of`'s second search."""
     groups = [_groups(p) for p in pictures]
     buckets: dict[tuple, list[tuple[int, int, int, int]]] = defaultdict(list)
     for i, picture_groups in enumerate(groups):
@@ -134,20 +134,21 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
             coded.update(zip(members, codec.encode_batch(engine, images, "adaptive",
                                                          workers=workers, quick=quick),
                              strict=True))
-    pngs = map_split(png_of, pictures, sum(p.width * p.height for p in pictures), workers)
+    fallbacks = map_split(lambda i: _fallbacks(pictures[i], groups[i]), range(len(pictures)),
+                          sum(p.width * p.height for p in pictures), workers)
     results = []
-    for i, picture in enumerate(pictures):
+    for i, (picture, (png, plain)) in enumerate(zip(pictures, fallbacks, strict=True)):
         body, parts, bits = bytearray(), [], 0.0
         for g, pieces in enumerate(groups[i]):
             body += varint.pack(len(pieces))
-            for k, (what, data) in enumerate(pieces):
+            for k, (what, _) in enumerate(pieces):
                 if what != "predict":
-                    method, chosen = _plain(data)
+                    method, chosen = plain[g][k][0]
                     bits += 8 * len(chosen)
                     body += _piece(method, chosen)
                     continue
-                chosen = [_best(tile, coded.get((i, g, k, t)))
-                          for t, tile in enumerate(tiles(data))]
+                chosen = [_best(fallback, coded.get((i, g, k, t)))
+                          for t, fallback in enumerate(plain[g][k])]
                 bits += sum(b for _, _, b in chosen)
                 parts.append(_summary([m for m, _, _ in chosen]))
                 if len(chosen) == 1:
@@ -155,9 +156,17 @@ def encode_pictures(engine: Engine | None, pictures: Sequence[Picture],
                 else:
                     body += _piece("tiles", varint.pack(TILE) + b"".join(
                         _piece(m, d) for m, d, _ in chosen))
-        results.append(_shortest(picture, pngs[i],
+        results.append(_shortest(picture, png,
                                  Encoded("coded", bytes(body), tuple(parts), bits)))
     return results
+
+
+def _fallbacks(picture: Picture, pieces: list[list[tuple[str, object]]]
+               ) -> tuple[bytes, list[list[list[tuple[str, bytes]]]]]:
+    """(the picture's `png_of`, for each group's each piece the `_plain` forms of its
+    tiles, a bytes piece's alone): what the predictor's code must beat, made on every core."""
+    return png_of(picture), [[[_plain(t.tobytes()) for t in tiles(data)] if what == "predict"
+                              else [_plain(data)] for what, data in group] for group in pieces]
 
 
 def tiles(planes: np.ndarray) -> list[np.ndarray]:
@@ -170,10 +179,10 @@ def tiles(planes: np.ndarray) -> list[np.ndarray]:
             for y in range(0, h, TILE) for x in range(0, w, TILE)]
 
 
-def _best(planes: np.ndarray, coded: codec.Coded | None) -> tuple[str, bytes, float]:
-    """(piece method, bytes, bits accounted) of a predicted plane set: the shortest of its
-    predictor code, zlib and literal."""
-    method, chosen = _plain(planes.tobytes())
+def _best(plain: tuple[str, bytes], coded: codec.Coded | None) -> tuple[str, bytes, float]:
+    """(piece method, bytes, bits accounted) of a predicted plane set: the shorter of its
+    predictor code and its `_plain` form."""
+    method, chosen = plain
     if coded is not None and len(coded.payload) < len(chosen):
         return coded.method, coded.payload, coded.cross_entropy + coded.tuning_bits
     return method, chosen, 8.0 * len(chosen)
