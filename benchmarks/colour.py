@@ -1,6 +1,7 @@
-"""Where coding the colour channels together falls short: rowcast against JPEG XL on the
-retina tiles that JPEG XL codes smaller (benchmarks/ADAPT.md) and on the held-out photo
-thumbnails.
+"""Coding the colour channels together: rowcast's two bases against JPEG XL on the retina
+tiles that JPEG XL codes smaller (benchmarks/ADAPT.md), on the held-out photo thumbnails,
+and on those thumbnails passed through Pillow's JPEG (quality 90, 4:2:0), as a camera's JPEG
+thumbnails are.
 
     python benchmarks/colour.py
 
@@ -9,18 +10,19 @@ For each set:
 * each codec's bytes with the three channels coded as one RGB image and as three gray
   images: what coding them together gains;
 * the zeroth-order entropy of the residuals against the family's base prediction (the
-  median predictor on each channel) and against a colour-difference base (G predicted as
-  R plus the median predictor on G - R, B as G plus the median predictor on B - G);
-* an experiment, in this process only: the payloads when the encoder uses that base for G
-  and B, without the network's G and B mean corrections and channel couplings (trained
-  for the plain base), each image keeping the shorter of its two payloads. No archive can
-  hold them: rowcast's decoder knows the plain base alone.
+  median predictor on each channel) and against the colour-difference base
+  (`family.difference_base`: G predicted as R plus the median predictor on G - R, B as G
+  plus the median predictor on B - G);
+* rowcast's payloads on the plain base alone, on the colour-difference base alone (method
+  "difference"), as the encoder chooses per image (what `rowcast compress` writes), and the
+  shorter of each image's two (the best a choice could do).
 
 Prints the figures and writes benchmarks/COLOUR.md and benchmarks/colour.json.
 """
 
 from __future__ import annotations
 
+import io
 import json
 from datetime import date
 from pathlib import Path
@@ -29,6 +31,7 @@ import imagecodecs
 import numpy as np
 import typer
 from adapt import tiles
+from PIL import Image
 
 import rowcast
 from rowcast import codec, workers
@@ -40,54 +43,28 @@ from rowcast.quantize import load_model
 HERE = Path(__file__).parent
 
 
-def median_of(d: np.ndarray) -> np.ndarray:
-    """The median predictor on a signed plane (H, W): left, above, left + above -
-    above-left; the left value on the top row, the one above in the first column, 0 at the
-    origin."""
-    left, up, corner = np.zeros_like(d), np.zeros_like(d), np.zeros_like(d)
-    left[:, 1:], up[1:, :], corner[1:, 1:] = d[:, :-1], d[:-1, :], d[:-1, :-1]
-    lo, hi = np.minimum(left, up), np.maximum(left, up)
-    m = np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
-    m[0, :], m[:, 0] = left[0, :], up[:, 0]
-    m[0, 0] = 0
-    return m
-
-
-def difference_base(img: np.ndarray) -> np.ndarray:
-    """The family's base for R; G as R plus the median predictor on G - R, B as G plus the
-    median predictor on B - G, clamped to 0..255. (3, H, W) int64."""
-    x = img.astype(np.int64)
-    base = fam.base_prediction(x)
-    base[1] = np.clip(x[0] + median_of(x[1] - x[0]), 0, 255)
-    base[2] = np.clip(x[1] + median_of(x[2] - x[1]), 0, 255)
-    return base
-
-
 def entropy(residuals: np.ndarray) -> float:
     """Zeroth-order entropy of integer residuals, bits each."""
     p = np.bincount(residuals.ravel() + 255) / residuals.size
     return float(-(p[p > 0] * np.log2(p[p > 0])).sum())
 
 
-def payloads(engine: Engine, images: list[np.ndarray], difference: bool) -> np.ndarray:
-    """Each image's payload bytes, with the plain base or (an experiment, see the module
-    docstring) the colour-difference base."""
-    if not difference:
-        return np.array([len(c.payload) for c in codec.encode_batch(engine, images)])
-    plain_base, plain_one = codec.base_prediction, codec._encode_one
+def payloads(engine: Engine, images: list[np.ndarray], base: str) -> tuple[np.ndarray, int]:
+    """(each image's payload bytes on `base` (`codec.encode_batch`), how many are coded on
+    the colour-difference base)."""
+    coded = codec.encode_batch(engine, images, base=base)
+    return (np.array([len(c.payload) for c in coded]),
+            sum(c.method == "difference" for c in coded))
 
-    def one(out: np.ndarray, *args, **kwargs):
-        out = out.copy()
-        out[..., 2] = out[..., 4] = 0  # G's and B's mean corrections
-        out[..., 2 * fam.CHANNELS : fam.OUTPUTS] = 0  # the channel couplings
-        return plain_one(out, *args, **kwargs)
 
-    codec.base_prediction, codec._encode_one = difference_base, one
-    try:
-        return np.array([len(c.payload) for c in codec.encode_batch(engine, images,
-                                                                     workers=1)])
-    finally:
-        codec.base_prediction, codec._encode_one = plain_base, plain_one
+def through_jpeg(images: list[np.ndarray]) -> list[np.ndarray]:
+    """Each image through Pillow's JPEG encoder and decoder (quality 90, 4:2:0)."""
+    out = []
+    for im in images:
+        buffer = io.BytesIO()
+        Image.fromarray(im.transpose(1, 2, 0)).save(buffer, "JPEG", quality=90)
+        out.append(np.ascontiguousarray(np.asarray(Image.open(buffer)).transpose(2, 0, 1)))
+    return out
 
 
 def measure(engine: Engine, name: str, images: list[np.ndarray]) -> dict:
@@ -98,7 +75,9 @@ def measure(engine: Engine, name: str, images: list[np.ndarray]) -> dict:
            "apart": sum(len(imagecodecs.jpegxl_encode(np.ascontiguousarray(t[..., c]),
                                                       lossless=True, effort=9))
                         for t in hwc for c in range(3))}
-    plain = payloads(engine, images, False)
+    plain, _ = payloads(engine, images, "plain")
+    difference, _ = payloads(engine, images, "difference")
+    either, chosen = payloads(engine, images, "either")
     ours = {"joint": int(plain.sum()),
             "apart": int(sum(len(c.payload) for c in codec.encode_batch(
                 engine, [im[c : c + 1].copy() for im in images for c in range(3)])))}
@@ -106,45 +85,51 @@ def measure(engine: Engine, name: str, images: list[np.ndarray]) -> dict:
     entropies = {kind: [entropy(np.concatenate([(im[c] - base(im)[c]).ravel() for im in x]))
                         for c in range(3)]
                  for kind, base in (("plain", fam.base_prediction),
-                                    ("difference", difference_base))}
-    variant = payloads(engine, images, True)
+                                    ("difference", fam.difference_base))}
     return {"set": name, "images": len(images), "subpixels": int(sum(im.size for im in images)),
             "rowcast": ours, "jxl9": jxl, "entropy_bits": entropies,
-            "difference_base_payloads": int(variant.sum()),
-            "shorter_of_both": int(np.minimum(plain, variant).sum())}
+            "difference_base_payloads": int(difference.sum()),
+            "chosen_payloads": int(either.sum()), "chosen_difference": chosen,
+            "shorter_of_both": int(np.minimum(plain, difference).sum())}
 
 
 def main() -> None:
     """Both sets: print the table, write COLOUR.md and colour.json."""
     workers.set_threads(1)
     engine = Engine(load_model())
+    photos = [p for _, p in thumbnails(RGB_PHOTOS, "RGB", crops=4)]
     sets = {"retina tiles": [np.ascontiguousarray(t.transpose(2, 0, 1))
                              for t in tiles("retina")],
-            "photo thumbnails": [p for _, p in thumbnails(RGB_PHOTOS, "RGB", crops=4)]}
+            "photo thumbnails": photos, "photo thumbnails through JPEG": through_jpeg(photos)}
     rows = [measure(engine, name, images) for name, images in sets.items()]
     result = {"date": date.today().isoformat(), "rowcast": rowcast.__version__,
               "model": engine.model.name, "sets": rows}
     (HERE / "colour.json").write_text(json.dumps(result, indent=1) + "\n")
     lines = [f"# Coding the colour channels together ({result['date']}, rowcast "
              f"{result['rowcast']})", "",
-             "`python benchmarks/colour.py`: the 484 64-px retina tiles of benchmarks/ADAPT.md "
-             "and the 32 held-out RGB photo thumbnails. Bytes of every image coded as RGB "
-             "(joint) and as three gray images (apart); the residuals' zeroth-order entropy "
-             "(bits, R G B) against the median predictor on each channel (plain) and against "
-             "the colour-difference base (G from R plus the median on G - R, B from G plus "
-             "the median on B - G); the payloads of an encoder given that base for G and B "
-             "without the network's G and B means and couplings (an experiment: no decoder "
-             "reads them), and the shorter of each image's two payloads.", "",
-             "| set | rowcast joint | apart | JPEG XL e9 joint | apart | entropy plain | "
-             "entropy difference | difference base | shorter of both |",
-             "|---|---:|---:|---:|---:|---|---|---:|---:|"]
+             "`python benchmarks/colour.py`: the 484 64-px retina tiles of benchmarks/ADAPT.md, "
+             "the 32 held-out RGB photo thumbnails, and those thumbnails through Pillow's JPEG "
+             "(quality 90, 4:2:0). Bytes of every image coded as RGB (joint) and as three gray "
+             "images (apart); the residuals' zeroth-order entropy (bits, R G B) against the "
+             "median predictor on each channel (plain) and against the colour-difference base "
+             "(G from R plus the median on G - R, B from G plus the median on B - G); "
+             "rowcast's payloads on the plain base, on the colour-difference base (method "
+             "`difference`), as the encoder chooses per image (what `rowcast compress` "
+             "writes; how many took the difference base) and the shorter of each image's two. "
+             "Ratios are to the plain base.", "",
+             "| set | rowcast plain | apart | JPEG XL e9 joint | apart | entropy plain | "
+             "entropy difference | difference base | encoder's choice | shorter of both |",
+             "|---|---:|---:|---:|---:|---|---|---:|---:|---:|"]
     for r in rows:
         plain, diff = (" ".join(f"{v:.2f}" for v in r["entropy_bits"][k])
                        for k in ("plain", "difference"))
         base = r["rowcast"]["joint"]
         lines.append(f"| {r['set']} | {base} | {r['rowcast']['apart']} | "
                      f"{r['jxl9']['joint']} | {r['jxl9']['apart']} | {plain} | {diff} | "
-                     f"{r['difference_base_payloads']} | {r['shorter_of_both']} "
+                     f"{r['difference_base_payloads']} "
+                     f"({r['difference_base_payloads'] / base:.3f}) | "
+                     f"{r['chosen_payloads']} ({r['chosen_payloads'] / base:.3f}; "
+                     f"{r['chosen_difference']} of {r['images']}) | {r['shorter_of_both']} "
                      f"({r['shorter_of_both'] / base:.3f}) |")
     (HERE / "COLOUR.md").write_text("\n".join(lines) + "\n")
     print("\n".join(lines))

@@ -155,7 +155,7 @@ def test_kind_and_method_codes_are_the_agreed_ones() -> None:
     """Codes are part of the format (FORMAT.md's tables) and never change or get reused."""
     assert KINDS == {"image": 1, "file": 2, "left out": 3}
     assert METHODS == {"literal": 1, "coded": 2, "png": 3, "bytes": 4, "none": 5,
-                       "model": 6, "tuned": 7, "adaptive": 8, "zlib": 9}
+                       "model": 6, "tuned": 7, "adaptive": 8, "zlib": 9, "difference": 10}
     assert archive.VERSION == 7 and DEFAULT_PIXEL_LIMIT == 2**28
 
 
@@ -314,7 +314,7 @@ def test_extension_fields_are_bounded_in_number_and_size(tmp_path: Path) -> None
 
 @pytest.mark.parametrize(("fields", "reason"), [
     ({"kind": 4}, "unknown kind code 4"),
-    ({"method": 10}, "unknown method code 10"),
+    ({"method": 11}, "unknown method code 11"),
     ({"method": BYTES}, "method 'bytes' does not suit an entry of kind 'image'"),
     ({"kind": 2, "fmt": 0, "width": 0, "height": 0},
      "method 'coded' does not suit an entry of kind 'file'"),

@@ -8,7 +8,7 @@ from rowcast.errors import DataError, RowcastError, UsageError
 
 __all__ = ["compress", "decompress", "verify", "read_index", "decode_entries",
            "RowcastError", "DataError", "UsageError"]
-__version__ = "0.13.0"
+__version__ = "0.14.0"
 
 _ACTIONS = ("compress", "decompress", "verify", "read_index", "decode_entries")
 

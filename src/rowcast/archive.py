@@ -35,11 +35,11 @@ IMAGE, FILE, LEFT_OUT = "image", "file", "left out"
 KINDS: dict[str, int] = {IMAGE: 1, FILE: 2, LEFT_OUT: 3}
 # One table of method names and codes: an entry's method, and a coded entry's parts.
 METHODS: dict[str, int] = {"literal": 1, "coded": 2, "png": 3, "bytes": 4, "none": 5,
-                           "model": 6, "tuned": 7, "adaptive": 8, "zlib": 9}
+                           "model": 6, "tuned": 7, "adaptive": 8, "zlib": 9, "difference": 10}
 KIND_METHODS: dict[str, frozenset[str]] = {
     IMAGE: frozenset({"coded", "png", "literal"}), FILE: frozenset({"bytes"}),
     LEFT_OUT: frozenset({"none"})}
-PART_METHODS = frozenset({"literal", "model", "tuned", "adaptive", "zlib"})
+PART_METHODS = frozenset({"literal", "model", "tuned", "adaptive", "zlib", "difference"})
 
 # Header field tags and record extension tags: odd = a reader must understand it.
 MODEL_SHA256_TAG, MODEL_NAME_TAG, MODEL_FILE_TAG, MODEL_PACKED_TAG = 1, 2, 3, 5

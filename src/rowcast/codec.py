@@ -44,6 +44,12 @@ PASS_PIXELS = 1 << 13  # pixels per parallel pass: activations stay in cache (en
 # 5); "streamed": the tuning fields range-coded ahead of the pixels under fixed priors
 # (`tuning.fields`) and the coder's ending trimmed (`entropy.finish`), format 6 on.
 LAYOUTS = ("full", "compact", "streamed")
+# Payload methods: "model" (untuned), "tuned" (scale and coupling offsets), "adaptive"
+# (and the neighbours' feedback gains), "difference" (an adaptive one whose G and B are
+# coded on the colour-difference base, `family.difference_base`; "streamed" layout only)
+METHODS = ("model", "tuned", "adaptive", "difference")
+FEEDBACK = ("adaptive", "difference")  # methods whose fields carry the feedback gains
+BASES = ("either", "plain", "difference")  # what `plan_of` may code G and B on
 
 
 def as_rgb(planes: np.ndarray) -> np.ndarray:
@@ -66,12 +72,33 @@ class Coded:
 def base_at(row: np.ndarray, above: tuple | None, x: int) -> np.ndarray:
     """`base_prediction` of column x only, for a batch: row is (B, 3, W), above the row
     above's `base_terms` or None on the top row."""
+    return median_at(row[:, :, x - 1] if x else None, above, x, 128, row.shape[:2])
+
+
+def colour_steps_at(row: np.ndarray, above: tuple | None, x: int) -> np.ndarray:
+    """The colour-difference base's steps at column x (B, 3): 0, the median predictor on
+    G - R and on B - G (`family.difference_base`), for a batch: row is (B, 3, W), above
+    the row above's `base_terms` of its `channel_steps`, or None on the top row."""
+    return median_at(channel_steps(row[:, :, x - 1]) if x else None, above, x, 0,
+                     row.shape[:2])
+
+
+def channel_steps(values: np.ndarray) -> np.ndarray:
+    """(0, G - R, B - G) of values (B, 3, ...), int64."""
+    v = values.astype(np.int64)
+    return np.concatenate([np.zeros_like(v[:, :1]), v[:, 1:] - v[:, :-1]], axis=1)
+
+
+def median_at(left: np.ndarray | None, above: tuple | None, x: int, origin: int,
+              shape: tuple[int, int]) -> np.ndarray:
+    """`family.median_predictor` at column x (`shape` (B, 3)): left is column x - 1 (None
+    at x = 0), above the row above's `base_terms` or None on the top row."""
     if above is None:
-        return row[:, :, x - 1].astype(np.int64) if x else np.full(row.shape[:2], 128, np.int64)
+        return left.astype(np.int64) if x else np.full(shape, origin, np.int64)
     up, slope = above
     if x == 0:
         return up[x]
-    left = row[:, :, x - 1].astype(np.int64)
+    left = left.astype(np.int64)
     # the median of left, up and left + up - corner is that last value clamped to [lo, hi]
     return np.minimum(np.maximum(left + slope[x], np.minimum(left, up[x])),
                       np.maximum(left, up[x]))
@@ -89,7 +116,8 @@ class Tune:
     (B, 3, bands), coupling offsets (3,) or (B, 3), the feedback's scale and bias gains
     (3,) or (B, 3) each, and the offset of every level: the channels' maps
     (`tuning.offset_map`) end to end in `levels`, channel c's offset for level l at
-    levels[origin[..., c] + l]."""
+    levels[origin[..., c] + l]; for a batch, which images use the colour-difference base
+    (B,) bool (method "difference"), else None."""
 
     offsets: np.ndarray
     couplings: np.ndarray
@@ -97,6 +125,7 @@ class Tune:
     biases: np.ndarray
     levels: np.ndarray
     origin: np.ndarray
+    difference: np.ndarray | None = None
 
     @property
     def tuned(self) -> np.ndarray:
@@ -106,12 +135,13 @@ class Tune:
 
     @classmethod
     def of(cls, offsets: np.ndarray, couplings: np.ndarray, gains: np.ndarray | None = None,
-           biases: np.ndarray | None = None) -> Tune:
+           biases: np.ndarray | None = None, difference: np.ndarray | None = None) -> Tune:
         levels = tuning.offset_map(offsets)
         starts = np.arange(levels.size, step=levels.shape[-1]).reshape(levels.shape[:-1])
         gains = np.zeros_like(couplings) if gains is None else gains
         biases = np.zeros_like(couplings) if biases is None else biases
-        return cls(offsets, couplings, gains, biases, levels.reshape(-1), starts - fam.LS_LO)
+        return cls(offsets, couplings, gains, biases, levels.reshape(-1), starts - fam.LS_LO,
+                   difference)
 
     @property
     def feedback(self) -> bool:
@@ -281,29 +311,31 @@ def image_rows(out: np.ndarray, rgb: np.ndarray, base: np.ndarray, planes: int,
 
 def encode_batch(engine: Engine, images: list[np.ndarray], method: str = "adaptive",
                  workers: int | None = None, layout: str = "streamed",
-                 quick: bool = False) -> list[Coded]:
+                 quick: bool = False, base: str = "either") -> list[Coded]:
     """Payloads for same-sized images, each (P, H, W) uint8. `method` is the richest
     method allowed: with "adaptive", each image gets the tuning and feedback gains that
     shorten it (method "adaptive", or "tuned" when every gain is zero) if that saves more
     than it costs; "tuned" tunes without gains (format versions 2 and 3); "model" never
     tunes. `layout` is how the payload carries its tuning (`LAYOUTS`); `quick` skips the
-    tuning's second search (`tuning_of`). Like decoding, a
-    large batch is shared by single-threaded processes (`workers.shares`); the bytes are the
-    same for any split."""
+    tuning's second search (`tuning_of`); `base` which base G and B may be coded on
+    (`plan_of`). Like decoding, a large batch is shared by single-threaded processes
+    (`workers.shares`); the bytes are the same for any split."""
     if method not in ("adaptive", "tuned", "model"):
         raise ValueError(f"no encoder for method {method!r}")
     if layout not in LAYOUTS:
         raise ValueError(f"no payload layout {layout!r}")
+    if base not in BASES:
+        raise ValueError(f"no base {base!r}")
     pixels = images[0].shape[1] * images[0].shape[2] if images else 0
     parts = [images[a:b] for a, b in shares(len(images), workers, pixels)]
     if len(parts) > 1:
         load_compiled(engine, "encode")
     return [c for part in run_split(lambda part, _: _encode(engine, part, method, layout,
-                                                            quick), parts) for c in part]
+                                                            quick, base), parts) for c in part]
 
 
 def _encode(engine: Engine, images: list[np.ndarray], method: str,
-            layout: str, quick: bool) -> list[Coded]:
+            layout: str, quick: bool, base: str) -> list[Coded]:
     planes, h, w = images[0].shape
     per_pass = max(1, PASS_PIXELS // (h * w))
     coded = []
@@ -311,7 +343,7 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str,
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes, method, layout, quick))
+            coded.append(_encode_one(out, rgb, planes, method, layout, quick, base))
     return coded
 
 
@@ -423,16 +455,19 @@ def _prices(layout: str):
     return tuning.prices if layout == "streamed" else lambda name: None
 
 
-def _fields(tune: Tune, planes: int) -> list:
-    """`tuning.fields` of one image's tuning (with its gains when it has feedback)."""
-    return tuning.fields(tune.offsets, tune.couplings, tune.carried_gains, planes)
+def _fields(tune: Tune, planes: int, method: str | None = None) -> list:
+    """`tuning.fields` of one image's tuning: with its gains when it has feedback, and
+    always in method "difference"."""
+    gains = (tune.gains, tune.biases) if method == "difference" else tune.carried_gains
+    return tuning.fields(tune.offsets, tune.couplings, gains, planes)
 
 
-def header_length(tune: Tune, planes: int, layout: str) -> int:
+def header_length(tune: Tune, planes: int, layout: str, method: str | None = None) -> int:
     """What an image's tuning costs its payload, in 1/LENGTH_ONE bit: its header's bytes,
-    or in the "streamed" layout its fields' code length under their priors."""
+    or in the "streamed" layout its fields' code length under their priors (`method`:
+    the payload's, where it is "difference")."""
     if layout == "streamed":
-        return tuning.fields_length(_fields(tune, planes))
+        return tuning.fields_length(_fields(tune, planes, method))
     return 8 * tuning.header_bytes(tune.method, planes, layout == "compact") * LENGTH_ONE
 
 
@@ -496,12 +531,12 @@ def _offsets_again(tune: Tune, tuned: Params, near: Feedback, raw: np.ndarray,
     return best, best_near, before - best_bits
 
 
-def tuned_coder(tune: Tune | None, planes: int, layout: str):
+def tuned_coder(tune: Tune | None, planes: int, layout: str, method: str | None = None):
     """A range encoder ready for an image's pixels: in the "streamed" layout its tuning's
-    fields are coded first, under their priors."""
+    fields are coded first, under their priors (`method`: the payload's)."""
     coder = entropy.encoder()
     if layout == "streamed" and tune is not None:
-        for name, rows, symbols in _fields(tune, planes):
+        for name, rows, symbols in _fields(tune, planes, method):
             entropy.encode(coder, symbols, tuning.prior_tables(name)[rows])
     return coder
 
@@ -516,11 +551,60 @@ def payload_of(coder, tune: Tune | None, planes: int, layout: str) -> bytes:
                        planes == 1 and layout == "compact") + code
 
 
+@dataclass(frozen=True)
+class Plan:
+    """How the encoder codes one image: the raw outputs (H, W, outputs) and base (3, H, W)
+    it codes with, its tuning and feedback (`tuning_of`) and its payload method."""
+
+    out: np.ndarray
+    base: np.ndarray
+    tune: Tune | None
+    near: Feedback | None
+    method: str
+
+
+def plan_of(out: np.ndarray, rgb: np.ndarray, planes: int, method: str = "adaptive",
+            layout: str = "streamed", quick: bool = False, base: str = "either") -> Plan:
+    """The encoder's plan for an image: with method "adaptive", three planes and a
+    one-component model, the colour-difference base (method "difference",
+    `family.difference_base`) when `base` is "difference", or is "either" and that base
+    codes G and B shorter untuned (`_colour_bits`); else the plain base. Then the
+    tuning that shortens the payload most."""
+    plain = base_prediction(rgb)
+    if (base != "plain" and method == "adaptive" and planes == 3 and layout == "streamed"
+            and out.shape[-1] == fam.OUTPUTS):
+        other, other_base = fam.ignoring_colour(out), fam.difference_base(rgb)
+        if base == "difference" or _colour_bits(other, rgb, other_base) < _colour_bits(
+                out, rgb, plain):
+            tune, near = tuning_of(other, rgb, other_base, planes, method, layout, quick)
+            zero = np.zeros(3, np.int64)
+            tune = Tune.of(np.zeros((3, len(tuning.BANDS) + 1), np.int64), zero, zero,
+                           zero) if tune is None else tune
+            return Plan(other, other_base, tune, near, "difference")
+    tune, near = tuning_of(out, rgb, plain, planes, method, layout, quick)
+    return Plan(out, plain, tune, near, "model" if tune is None else tune.method)
+
+
+def _colour_bits(out: np.ndarray, rgb: np.ndarray, base: np.ndarray) -> int:
+    """G's and B's untuned code length, in 1/LENGTH_ONE bit: how the encoder weighs two
+    bases. (Measured on 240 retina tiles and 96 photo thumbnails: weighing them after
+    each base's best scale offsets chose no better, at three times the cost.)"""
+    from rowcast.tuningkernel import plane_lengths  # numba: only when coding
+
+    known = rgb.reshape(3, -1).T.astype(np.int64)
+    flat_base = base.reshape(3, -1).T
+    p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
+    residuals = known - flat_base
+    return sum(int(plane_lengths(symbol_lengths(), symbol_columns(known[:, c]), p.ls8[:, c],
+                                 p.means[:, c] + coupling_move(p.couplings, c, residuals),
+                                 0, 0).sum()) for c in (1, 2))
+
+
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
-                layout: str, quick: bool) -> Coded:
-    base = base_prediction(rgb)
-    chosen, near = tuning_of(out, rgb, base, planes, method, layout, quick)
-    coder = tuned_coder(chosen, planes, layout)
+                layout: str, quick: bool, base: str) -> Coded:
+    plan = plan_of(out, rgb, planes, method, layout, quick, base)
+    out, base, chosen, near = plan.out, plan.base, plan.tune, plan.near
+    coder = tuned_coder(chosen, planes, layout, plan.method)
     if out.shape[-1] == fam.OUTPUTS:  # one component: the coder's shared models of the rows
         from rowcast import tablecdfs  # numba: only when coding
 
@@ -542,8 +626,8 @@ def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
     payload = payload_of(coder, chosen, planes, layout)
     if chosen is None:
         return Coded(payload, bits)
-    return Coded(payload, bits, chosen.method,
-                 header_length(chosen, planes, layout) / LENGTH_ONE)
+    return Coded(payload, bits, plan.method,
+                 header_length(chosen, planes, layout, plan.method) / LENGTH_ONE)
 
 
 def decode_batch(engine: Engine, payloads: list[bytes], planes: int, height: int,
@@ -609,8 +693,8 @@ def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout
     biases = np.zeros((len(payloads), 3), np.int64)
     decoders = []
     for i, (payload, method) in enumerate(zip(payloads, methods, strict=True)):
-        if method not in tuning.HEADER_BYTES and method != "model":
-            raise ValueError(f"no decoder for method {method!r}")
+        if method not in METHODS or (method == "difference" and not streamed):
+            raise ValueError(f"no decoder for method {method!r} in layout {layout!r}")
         if method != "model" and not streamed:
             size = tuning.header_bytes(method, planes, layout == "compact")
             if len(payload) < size:
@@ -623,14 +707,18 @@ def open_payloads(payloads: list[bytes], methods: list[str], planes: int, layout
         decoders.append(opener(payload, trimmed=streamed))
         if method != "model" and streamed:
             symbols = {name: decoders[-1].decode(entropy.FAMILY, tuning.prior_tables(name)[rows])
-                       for name, rows in tuning.field_rows(planes, method == "adaptive")}
+                       for name, rows in tuning.field_rows(planes, method in FEEDBACK)}
             offsets[i], couplings[i], gains[i], biases[i] = tuning.from_fields(symbols, planes)
-    return decoders, Tune.of(offsets, couplings, gains, biases)
+    difference = np.array([m == "difference" for m in methods])
+    return decoders, Tune.of(offsets, couplings, gains, biases,
+                             difference if planes == 3 and difference.any() else None)
 
 
 def _decode(engine: Engine, payloads: list[bytes], methods: list[str], planes: int,
             height: int, width: int, progress, trace, layout: str,
             compiled: bool) -> np.ndarray:
+    if "difference" in methods and engine.out.weight.shape[0] != fam.OUTPUTS:
+        raise entropy.PayloadError("method 'difference' needs a one-component model")
     kernel = None
     if compiled:
         from rowcast import rowdecoder  # numba: loaded only when pixels are decoded
@@ -702,14 +790,21 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
         level_index = tune.tuned - fam.LS_LO
         lead_map = level_index * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
         q_map = level_index * (2 * feedback.DISTANCES - 1) + feedback.DISTANCES - 1
+    colour = None if tune is None or tune.difference is None else tune.difference[:, None]
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
         terms = None if above is None else base_terms(above)
+        steps = None if above is None else base_terms(channel_steps(above))
         row = img[:, :, y]
         for x in range(width):
             base = base_at(row, terms, x)
-            p = pixel_params(engine.pixel(acc_rows, row, x), base, tune, tune_levels=False)
+            raw = engine.pixel(acc_rows, row, x)
+            if colour is not None:  # G's and B's base waits for R's and G's values
+                raw = np.where(colour, fam.ignoring_colour(raw), raw)
+                step = colour_steps_at(row, steps, x)
+            coding = base.copy()  # the base the planes are coded on
+            p = pixel_params(raw, base, tune, tune_levels=False)
             if tune is None:  # a table's row is its level's row + its mean
                 level_rows = table_rows(0, p.ls8)
             else:
@@ -728,6 +823,10 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
                 pure = (p.weight % fam.WEIGHT_ONE == 0).any(axis=0)
             earlier = None  # the surprises of this pixel's planes so far, summed
             for c in range(planes):
+                if colour is not None and c:
+                    coding[:, c] = np.where(colour[:, 0], np.clip(
+                        row[:, c - 1, x].astype(np.int64) + step[:, c], 0, 255), base[:, c])
+                    p.means[:, c] += fam.MU_SCALE * (coding[:, c] - base[:, c])
                 move = coupling_move(p.couplings, c, residuals)
                 if active:
                     ahead = p.means[:, c] + move  # the mean the errors are measured from
@@ -753,7 +852,7 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
                     found = _mixed_models(models, mixed, rows, rows_b, p.weight[:, c], pure[c])
                 values = np.fromiter(map(decode, decoders, found), np.int64, batch)
                 row[:, c, x] = values
-                residuals[:, c] = values - base[:, c]
+                residuals[:, c] = values - coding[:, c]
                 if active:
                     values *= 4
                     e_row[x, c] = values - ahead
@@ -763,8 +862,7 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
                         earlier = q if c == 0 else earlier + q
             if planes == 1:
                 row[:, 1:, x] = row[:, :1, x]
-                residuals[:, 1:] = residuals[:, :1]
-            misses += np.abs(residuals)
+            misses += np.abs(row[:, :, x] - base)  # the plain base's misses, whatever codes
         if active:
             q_above, q_row = q_row, q_above
             e_above, e_row = e_row, e_above

@@ -36,9 +36,9 @@ from rowcast.predictor import Engine
 from rowcast.workers import map_split
 
 PIECES: dict[str, int] = {"literal": 0, "model": 1, "tuned": 2, "adaptive": 3, "zlib": 4,
-                          "tiles": 5}
+                          "tiles": 5, "difference": 6}
 _PIECE_NAMES = {code: name for name, code in PIECES.items()}
-PREDICTED = ("model", "tuned", "adaptive")  # pieces coded by the predictor
+PREDICTED = ("model", "tuned", "adaptive", "difference")  # pieces coded by the predictor
 ONE_BIT_HIGH = 255  # a 1-bit value of 1 as the predictor sees it
 TILE = 256  # predicted planes with a side over this are coded in tiles of this side
 # A decode of this many predicted pixels or fewer, where the compiled kernels are neither

@@ -54,13 +54,11 @@ def output_gains(components: int = 1) -> list[float]:
             + [MU_GAIN, LS_SCALE, WEIGHT_ONE] * CHANNELS * (components - 1))
 
 
-def base_prediction(img: np.ndarray) -> np.ndarray:
-    """The family's integer base prediction for every pixel of img (..., 3, H, W), int64.
-
-    Median of left, above and left + above - above-left; the left pixel on the top row, the
-    one above in the first column, 128 at the origin. The network's mean corrects it.
-    """
-    x = img.astype(np.int64)
+def median_predictor(x: np.ndarray, origin: int) -> np.ndarray:
+    """Median of left, above and left + above - above-left for every value of x (..., H,
+    W), int64; the left value on the top row, the one above in the first column, `origin`
+    at the origin."""
+    x = x.astype(np.int64)
     left, up, corner = np.zeros_like(x), np.zeros_like(x), np.zeros_like(x)
     left[..., 1:] = x[..., :-1]
     up[..., 1:, :] = x[..., :-1, :]
@@ -69,8 +67,42 @@ def base_prediction(img: np.ndarray) -> np.ndarray:
     med = np.where(corner >= hi, lo, np.where(corner <= lo, hi, left + up - corner))
     med[..., 0, :] = left[..., 0, :]
     med[..., :, 0] = up[..., :, 0]
-    med[..., 0, 0] = 128
+    med[..., 0, 0] = origin
     return med
+
+
+def base_prediction(img: np.ndarray) -> np.ndarray:
+    """The family's integer base prediction for every pixel of img (..., 3, H, W), int64:
+    the `median_predictor` of each channel, 128 at the origin. The network's mean corrects
+    it; the activity input measures the misses of this base whatever base codes."""
+    return median_predictor(img, 128)
+
+
+# The colour-difference base (payload method "difference", one-component models): R's base
+# as above, G's the pixel's R plus the median predictor on G - R, B's its G plus the median
+# predictor on B - G (0 at the origin), clamped to 0..255. The network's G and B means and
+# channel couplings are left out (its outputs at these indices count as 0): they were
+# learned for the plain base. The per-image tuning's coupling offsets still apply.
+DIFFERENCE_IGNORED = (2, 4, 2 * CHANNELS, 2 * CHANNELS + 1, 2 * CHANNELS + 2)
+
+
+def difference_base(img: np.ndarray) -> np.ndarray:
+    """The colour-difference base of every pixel of img (..., 3, H, W), int64."""
+    x = img.astype(np.int64)
+    base = np.empty_like(x)
+    base[..., 0, :, :] = median_predictor(x[..., 0, :, :], 128)
+    for c in (1, 2):
+        step = median_predictor(x[..., c, :, :] - x[..., c - 1, :, :], 0)
+        base[..., c, :, :] = np.clip(x[..., c - 1, :, :] + step, 0, 255)
+    return base
+
+
+def ignoring_colour(out: np.ndarray) -> np.ndarray:
+    """Raw outputs (..., outputs) with those the colour-difference base leaves out set to
+    0 (a copy)."""
+    kept = out.copy()
+    kept[..., list(DIFFERENCE_IGNORED)] = 0
+    return kept
 
 
 def activity_from_sums(sums: np.ndarray, rows: np.ndarray | int, width: int) -> np.ndarray:

@@ -166,6 +166,8 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
     gains = tune.gains if tuned else zeros
     biases = tune.biases if tuned else zeros
     active = tuned and tune.feedback
+    colour = (tune.difference if tuned and tune.difference is not None
+              else np.zeros(batch, np.bool_))
     q = np.full((2, width, 3, batch), feedback.NEUTRAL, np.int64)  # above, this row
     e = np.zeros((2, width, 3, batch), np.int64)
     states = np.stack([s.state for s in streams])
@@ -187,7 +189,7 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
         acc = kernel.head_rows(feats, fam.activity_from_sums(misses, y, width))
         bad = row(y, acc, img, planes, kernel.left, kernel.lefts, kernel.m1, kernel.s1, kernel.w2,
                    kernel.b2, kernel.m2, kernel.s2, kernel.w3, kernel.b3, kernel.m3, kernel.s3,
-                   tuned, levels, origin, couplings, active, gains, biases, q, e, misses,
+                   tuned, levels, origin, couplings, active, gains, biases, colour, q, e, misses,
                    counts, columns, surprise, ftab, cdfs, built, states, words, ends, *scratch)
         if bad:
             raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
@@ -258,9 +260,10 @@ def channel_move(c, k0, k1, k2, r0, r1):
 
 @jit
 def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
-         origin, couplings, active, gains, biases, q, e, misses, counts, columns, surprise, ftab,
-         cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
-    """Decode row y of every image in place; returns 1 when a payload is not decodable."""
+         origin, couplings, active, gains, biases, colour, q, e, misses, counts, columns, surprise,
+         ftab, cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
+    """Decode row y of every image in place; returns 1 when a payload is not decodable.
+    colour[b]: image b's G and B are coded on the colour-difference base."""
     batch, width = img.shape[0], img.shape[3]
     two = raw.shape[1] > fam.OUTPUTS
     table = np.empty(256, np.float32)
@@ -271,6 +274,7 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
     ls8 = np.empty(3, np.int64)
     cp = np.empty(3, np.int64)
     res = np.zeros(3, np.int64)
+    step = np.zeros(3, np.int64)
     for x in range(width):
         _head(x, y, acc, img, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, lefts,
               acc1, a1, acc2, a2, acc3, raw)
@@ -284,6 +288,12 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     left, up = np.int64(img[b, c, y, x - 1]), np.int64(img[b, c, y - 1, x])
                     corner = np.int64(img[b, c, y - 1, x - 1])
                     base[c] = _clamp(left + up - corner, min(left, up), max(left, up))
+            if colour[b]:
+                for k in fam.DIFFERENCE_IGNORED:
+                    raw[b, k] = 0
+                for c in range(1, 3):
+                    step[c] = _colour_step(img, b, c, y, x)
+            for c in range(3):
                 mean[c] = raw[b, 2 * c] + fam.MU_SCALE * base[c]
                 ls8[c] = _clamp(raw[b, 2 * c + 1], fam.LS_LO, fam.LS_HI)
                 cp[c] = _clamp(raw[b, 2 * fam.CHANNELS + c], -fam.COUPLE_MAX, fam.COUPLE_MAX)
@@ -291,6 +301,10 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     cp[c] = _clamp(cp[c] + couplings[b, c], -fam.COUPLE_MAX, fam.COUPLE_MAX)
             earlier = 0
             for c in range(planes):
+                coding = base[c]  # the base plane c is coded on
+                if colour[b] and c:
+                    coding = _clamp(np.int64(img[b, c - 1, y, x]) + step[c], 0, 255)
+                    mean[c] += fam.MU_SCALE * (coding - base[c])
                 move = channel_move(c, cp[0], cp[1], cp[2], res[0], res[1])
                 offset = levels[origin[b, c] + ls8[c]] if tuned else 0
                 level = _clamp(ls8[c] + offset, fam.LS_LO, fam.LS_HI)  # tuned
@@ -341,7 +355,7 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                 if value < 0:
                     return 1
                 img[b, c, y, x] = value
-                res[c] = value - base[c]
+                res[c] = value - coding
                 if active:
                     e[1, x, c, b] = 4 * value - ahead
                     qv = surprise[level - fam.LS_LO, abs(4 * value - mu)]
@@ -350,8 +364,20 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
             if planes == 1:
                 img[b, 1, y, x] = img[b, 0, y, x]
                 img[b, 2, y, x] = img[b, 0, y, x]
-                res[1] = res[0]
-                res[2] = res[0]
-            for c in range(3):
-                misses[b, c] += abs(res[c])
+            for c in range(3):  # the plain base's misses, whatever base codes
+                misses[b, c] += abs(np.int64(img[b, c, y, x]) - base[c])
     return 0
+
+
+@jit(inline="always")
+def _colour_step(img, b, c, y, x):
+    """The colour-difference base's step of plane c (1: G - R, 2: B - G) at (y, x): the
+    median predictor on that difference, as `family.difference_base`."""
+    if y == 0:
+        return (np.int64(img[b, c, 0, x - 1]) - np.int64(img[b, c - 1, 0, x - 1])) if x else 0
+    up = np.int64(img[b, c, y - 1, x]) - np.int64(img[b, c - 1, y - 1, x])
+    if x == 0:
+        return up
+    left = np.int64(img[b, c, y, x - 1]) - np.int64(img[b, c - 1, y, x - 1])
+    corner = np.int64(img[b, c, y - 1, x - 1]) - np.int64(img[b, c - 1, y - 1, x - 1])
+    return _clamp(left + up - corner, min(left, up), max(left, up))
