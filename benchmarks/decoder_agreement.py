@@ -3,7 +3,8 @@
     python benchmarks/decoder_agreement.py [--count 1000] [--seed 0]
 
 Random images (gray or RGB, 1 to 96 px a side, smooth fields with noise of random
-strength, some flat, some pure noise) are coded with the bundled model (each image's own
+strength, some flat, some pure noise, some whose G and B follow R closely, which the
+encoder codes on the colour-difference base) are coded with the bundled model (each image's own
 tuning and feedback gains, as compress codes them) and decoded by both decoders, each
 batch of same-sized images together; every pixel must agree with the other decoder and
 with the image. The golden archives are decoded by both in tests/test_golden.py. Prints
@@ -33,7 +34,7 @@ def random_image(rng: np.random.Generator) -> np.ndarray:
     """One image (P, H, W) uint8 of a random kind and size."""
     planes = int(rng.choice([1, 3]))
     h, w = (int(rng.integers(1, 97)) for _ in range(2))
-    kind = rng.integers(0, 4)
+    kind = rng.integers(0, 5)
     if kind == 0:  # flat
         return np.full((planes, h, w), rng.integers(0, 256), np.uint8)
     if kind == 1:  # noise
@@ -42,6 +43,9 @@ def random_image(rng: np.random.Generator) -> np.ndarray:
     field = np.stack([np.sin(x / rng.uniform(2, 30) + c) * np.cos(y / rng.uniform(2, 30))
                       for c in range(planes)])
     noise = rng.normal(0, rng.uniform(0.5, 20) if kind == 2 else 2, field.shape)
+    if kind == 4:  # colour that follows R, as after JPEG: what the difference base codes
+        noise = np.cumsum(rng.normal(0, 1, field.shape) * [[[4]], [[0.7]], [[0.7]]], axis=0)
+        field = field[:1].repeat(planes, axis=0)
     return np.clip(128 + 100 * field + noise, 0, 255).astype(np.uint8)
 
 

@@ -17,7 +17,6 @@ from rowcast.codec import (
     Feedback,
     Tune,
     as_rgb,
-    base_prediction,
     base_terms,
     channel_steps,
     colour_steps_at,
@@ -30,7 +29,7 @@ from rowcast.codec import (
     tuned_coder,
 )
 from rowcast.entropy import PayloadError
-from rowcast.family import row_activity
+from rowcast.family import base_prediction, row_activity
 from rowcast.heldout import GRAY_PHOTOS, RGB_PHOTOS, thumbnails, write_pngs
 from rowcast.network import Predictor
 from rowcast.predictor import Engine, conv_reference
@@ -46,10 +45,10 @@ def round_trip(engine, images, method="adaptive"):
     return coded, decoded
 
 
-def encoder_tables(out, rgb, planes, method="adaptive", base="either"):
+def encoder_tables(out, rgb, planes, method="adaptive", base="either", model_base="median"):
     """The tables the encoder codes one image with: on the base and with the tuning
     `encode_batch` gives it (`plan_of`)."""
-    plan = plan_of(out, rgb, planes, method, base=base)
+    plan = plan_of(out, rgb, planes, method, base=base, model_base=model_base)
     return image_tables(plan.out, rgb, plan.base, planes, plan.tune, plan.near)[1]
 
 
@@ -175,11 +174,12 @@ def test_activity_is_the_scaled_mean_miss_of_the_rows_above():
             assert row_activity(img)[c, y] == want
 
 
-def small_model(left: int, activity: bool, components: int = 1) -> Engine:
+def small_model(left: int, activity: bool, components: int = 1,
+                base: str = "median") -> Engine:
     """A random quantised network (not trained) exported to an integer model."""
     torch.manual_seed(5)
     net = Predictor(width=8, hidden=12, depth=2, left=left, activity=activity,
-                    components=components)
+                    components=components, base=base)
     calibrate(net, torch.randint(0, 256, (2, 3, 16, 16)).float())
     net.quant = True
     if components == 2:  # first-component weights: mixed (R), mostly 64 (G), mostly 0 (B)
@@ -502,3 +502,37 @@ def test_a_difference_payload_needs_a_one_component_model(tiny_engine, rgb64):
     assert "difference" not in [c.method for c in encode_batch(two, images, base="difference")]
     with pytest.raises(PayloadError, match="one-component model"):
         decode_batch(two, [c.payload for c in coded], 3, 64, 64, methods="difference")
+
+
+@pytest.mark.parametrize("planes", [1, 3])
+def test_a_model_of_the_difference_base_codes_every_rgb_image_on_it(rgb64, planes):
+    """A model whose card names the colour-difference base: its network's means correct
+    that base for G and B of every RGB image (its outputs all count); the decoders give
+    the encoder's tables for every subpixel and the pixels back, compiled and reference,
+    with untuned, tuned and adaptive payloads in one batch; gray images code R alone, on
+    the median base; no payload is of method "difference"."""
+    engine = small_model(left=3, activity=True, base="difference")
+    images = [im[:planes, :20, :24].copy() for im in through_jpeg(rgb64[:3])]
+    coded = [encode_batch(engine, [im], method)[0]
+             for im, method in zip(images, ("model", "tuned", "adaptive"), strict=True)]
+    methods = [c.method for c in coded]
+    assert "difference" not in methods and methods[0] == "model"
+    rgb = np.stack([as_rgb(im) for im in images])
+    expected = [encoder_tables(out, im, planes, method, model_base="difference").reshape(
+        20, 24, planes, 256) for out, im, method in zip(engine.parallel(rgb), rgb,
+                                                       ("model", "tuned", "adaptive"),
+                                                       strict=True)]
+    seen = []
+
+    def check(y, x, c, tables):
+        seen.extend((b, y, x, c) for b in range(3)
+                    if not np.array_equal(tables[b], expected[b][y, x, c]))
+
+    payloads = [c.payload for c in coded]
+    decoded = decode_batch(engine, payloads, planes, 20, 24, trace=check, methods=methods)
+    assert seen == [] and np.array_equal(decoded, np.stack(images))
+    compiled = decode_batch(engine, payloads, planes, 20, 24, methods=methods)
+    assert np.array_equal(compiled, np.stack(images))
+    plain = small_model(left=3, activity=True)  # the same network on the median base
+    same = [c.payload for c in encode_batch(plain, images[2:], base="plain")] == payloads[2:]
+    assert same == (planes == 1)

@@ -13,7 +13,6 @@ from safetensors.numpy import load
 from rowcast import family as fam
 from rowcast.codec import image_tables
 from rowcast.entropy import cross_entropy_bits
-from rowcast.family import base_prediction
 from rowcast.network import Predictor, log2_likelihood, parameters_from_output
 from rowcast.predictor import Engine
 from rowcast.quantize import (
@@ -25,6 +24,7 @@ from rowcast.quantize import (
     load_model,
     model_from_bytes,
     to_bytes,
+    to_network,
 )
 from rowcast.train import calibrate
 
@@ -117,13 +117,15 @@ def test_integer_network_matches_what_quantised_training_computed(left, activity
     assert params["mu4"].shape == (2, 3, 12, 14)
 
 
-@pytest.mark.parametrize("components", [1, 2])
-def test_training_loss_is_what_the_coder_pays(rgb64, components):
+@pytest.mark.parametrize(("components", "base"), [(1, "median"), (2, "median"),
+                                                  (1, "difference")])
+def test_training_loss_is_what_the_coder_pays(rgb64, components, base):
     """The loss that training minimises (bits under the float family, quantised network)
     matches the cross-entropy of the integer tables that the coder uses, within 0.5%, for one
-    and two components: training optimises the real code length."""
+    and two components and for a network that corrects the colour-difference base:
+    training optimises the real code length."""
     torch.manual_seed(4)
-    net = Predictor(width=16, hidden=16, depth=3, components=components)
+    net = Predictor(width=16, hidden=16, depth=3, components=components, base=base)
     x = np.stack(rgb64[:4])
     calibrate(net, torch.from_numpy(x).float())
     net.quant = True
@@ -133,10 +135,40 @@ def test_training_loss_is_what_the_coder_pays(rgb64, components):
     engine = Engine(model_from_bytes(to_bytes(*export(net, "check")), "check"))
     with torch.no_grad():
         xt = torch.from_numpy(x).float()
-        trained = -log2_likelihood(parameters_from_output(net(xt), xt, True), xt).sum().item()
-    paid = sum(cross_entropy_bits(*image_tables(out, im, base_prediction(im), 3))
+        trained = -log2_likelihood(parameters_from_output(net(xt), xt, True, base),
+                                   xt).sum().item()
+    paid = sum(cross_entropy_bits(*image_tables(out, im, fam.model_base(im, base), 3))
                for out, im in zip(engine.parallel(x), x, strict=True))
+    assert engine.model.base == base
     assert abs(paid / trained - 1) < 0.005
+
+
+def test_a_card_names_its_base_from_version_2_on_and_nothing_else_is_accepted():
+    """A model of the median base keeps version 1 and no `base` (so the bundled models'
+    identities stay); one of the colour-difference base is version 2 and names it, which
+    rowcast 0.13 refuses as a version it does not know. A version 1 card naming a base, a
+    version 2 one naming none or "median", and an unknown base are refused."""
+    torch.manual_seed(6)
+    cards = {}
+    for base in fam.MODEL_BASES:
+        net = Predictor(width=8, hidden=8, depth=2, base=base)
+        calibrate(net, torch.randint(0, 256, (2, 3, 8, 8)).float())
+        net.quant = True
+        cards[base] = export(net, base)
+        model = model_from_bytes(to_bytes(*cards[base]), base)
+        assert model.base == base and to_network(model).base == base
+    assert cards["median"][0]["version"] == 1 and "base" not in cards["median"][0][
+        "architecture"]
+    assert cards["difference"][0]["version"] == 2
+    assert cards["difference"][0]["architecture"]["base"] == "difference"
+    card, tensors = cards["difference"]
+    for version, arch in ((1, {"base": "difference"}), (2, {"base": "median"}), (2, {}),
+                          (2, {"base": "sideways"})):
+        bad = {**card, "version": version,
+               "architecture": {k: v for k, v in card["architecture"].items() if k != "base"}
+               | arch}
+        with pytest.raises(ModelError):
+            model_from_bytes(to_bytes(bad, tensors), "bad")
 
 
 def test_bundled_model_is_small_and_its_integer_form_keeps_within_two_percent():

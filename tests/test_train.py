@@ -234,6 +234,33 @@ def test_a_model_file_becomes_a_network_that_exports_back_to_its_integers(name):
     assert card["architecture"] == model.card["architecture"]
 
 
+def test_a_run_may_switch_the_base_its_network_corrects_and_keeps_it(tmp_path):
+    """`--base difference` continues a median-base run on the colour-difference base: the
+    run records it, a resume without --base keeps it, the exported model's card names it
+    and its archives round-trip; an unknown base is refused."""
+    data = tmp_path / "images"
+    data.mkdir()
+    for i in range(2):
+        Image.fromarray(smooth_image(i)).save(data / f"cam{i}.png")
+    train(Config(data=str(data), out=str(tmp_path / "run"), minutes=0.03, batch=2, width=8,
+                 hidden=16, depth=2, qat_at=0.0))
+    main(str(data), str(tmp_path / "diff"), minutes=0.03, batch=2, resume=str(tmp_path / "run"),
+         base="difference")
+    net, meta = load_checkpoint(tmp_path / "diff")
+    assert net.base == "difference" and "--base difference" in meta["state"]["commands"][-1]
+    main(str(data), str(tmp_path / "more"), minutes=0.03, batch=2, resume=str(tmp_path / "diff"),
+         export=str(tmp_path / "d.safetensors"))
+    assert load_checkpoint(tmp_path / "more")[0].base == "difference"
+    model = load_model(tmp_path / "d.safetensors")
+    assert model.base == "difference" and model.card["version"] == 2
+    image = smooth_image(3, 20).transpose(2, 0, 1).copy()
+    (coded,) = encode_batch(Engine(model), [image])
+    decoded = decode_batch(Engine(model), [coded.payload], 3, 20, 20, methods=[coded.method])
+    assert np.array_equal(decoded[0], image)
+    with pytest.raises(SystemExit, match="--base must be one of median, difference"):
+        main(str(data), str(tmp_path / "x"), minutes=0.01, base="sideways")
+
+
 def test_training_continues_from_the_bundled_model_on_a_users_images(tmp_path):
     """`--resume default --export FILE` adapts the bundled model to a directory without
     validation images and writes a model file that codes exactly: same sizes, its steps and

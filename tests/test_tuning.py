@@ -220,3 +220,34 @@ def test_compiled_coupled_sums_are_the_plane_code_lengths() -> None:
         b = np.clip(cb + db[k], -fam.COUPLE_MAX, fam.COUPLE_MAX)
         mu = np.clip(means + ((a * ra + b * rb + 8) >> 4), fam.MU_LO, fam.MU_HI)
         assert got[k] == symbol_lengths()[count_index(mu, levels, columns)].sum()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 9), (7, 1), (9, 13)])
+def test_compiled_colour_costs_are_the_planes_code_lengths_on_both_bases(shape) -> None:
+    """G's and B's untuned code lengths, from the network's means and couplings on the
+    plain base and from neither on the colour-difference base, equal the table lookups of
+    those means (`codec.pixel_params`, `family.difference_base`), at edge shapes too."""
+    from rowcast.codec import coupling_move, pixel_params
+    from rowcast.tables import count_index, symbol_columns, symbol_lengths
+    from rowcast.tuningkernel import colour_costs
+
+    rng = np.random.default_rng(shape[0] * 3 + shape[1])
+    img = rng.integers(0, 256, (3, *shape), dtype=np.uint8)
+    img[1] = np.clip(img[0].astype(int) + rng.integers(-9, 10, shape), 0, 255)
+    n = shape[0] * shape[1]
+    out = np.concatenate([rng.integers(-300, 300, (n, 6)), rng.integers(-200, 200, (n, 3))],
+                         axis=1)
+    out[:, 1:6:2] = rng.integers(fam.LS_LO - 5, fam.LS_HI + 5, (n, 3))
+    known = img.reshape(3, -1).T.astype(np.int64)
+    want = []
+    for raw, base in ((out, fam.base_prediction(img)), (fam.ignoring_colour(out),
+                                                        fam.difference_base(img))):
+        flat = base.reshape(3, -1).T
+        p = pixel_params(raw, flat)
+        want.append(sum(int(symbol_lengths()[count_index(
+            np.clip(p.means[:, c] + coupling_move(p.couplings, c, known - flat), fam.MU_LO,
+                    fam.MU_HI), p.ls8[:, c], symbol_columns(known[:, c]))].sum())
+            for c in (1, 2)))
+    got = colour_costs(symbol_lengths(), out, known, fam.base_prediction(img).reshape(3, -1).T,
+                       shape[1])
+    assert got == tuple(want)

@@ -16,7 +16,6 @@ import numpy as np
 
 from rowcast import entropy, feedback, tuning
 from rowcast import family as fam
-from rowcast.family import base_prediction
 from rowcast.predictor import Engine
 from rowcast.tables import (
     LENGTH_ONE,
@@ -343,7 +342,8 @@ def _encode(engine: Engine, images: list[np.ndarray], method: str,
         group = np.stack([as_rgb(im) for im in images[start : start + per_pass]])
         outs = engine.parallel(group)
         for out, rgb in zip(outs, group, strict=True):
-            coded.append(_encode_one(out, rgb, planes, method, layout, quick, base))
+            coded.append(_encode_one(out, rgb, planes, method, layout, quick, base,
+                                     engine.model.base))
     return coded
 
 
@@ -564,18 +564,19 @@ class Plan:
 
 
 def plan_of(out: np.ndarray, rgb: np.ndarray, planes: int, method: str = "adaptive",
-            layout: str = "streamed", quick: bool = False, base: str = "either") -> Plan:
+            layout: str = "streamed", quick: bool = False, base: str = "either",
+            model_base: str = "median") -> Plan:
     """The encoder's plan for an image: with method "adaptive", three planes and a
-    one-component model, the colour-difference base (method "difference",
-    `family.difference_base`) when `base` is "difference", or is "either" and that base
-    codes G and B shorter untuned (`_colour_bits`); else the plain base. Then the
-    tuning that shortens the payload most."""
-    plain = base_prediction(rgb)
+    one-component model of the median base, the colour-difference base without the
+    network's G and B terms (method "difference", `family.difference_base`) when `base`
+    is "difference", or is "either" and that base codes G and B shorter untuned
+    (`_difference_saves`); else the model's own base (`model_base`: its card's). Then
+    the tuning that shortens the payload most."""
+    plain = fam.model_base(rgb, model_base)
     if (base != "plain" and method == "adaptive" and planes == 3 and layout == "streamed"
-            and out.shape[-1] == fam.OUTPUTS):
-        other, other_base = fam.ignoring_colour(out), fam.difference_base(rgb)
-        if base == "difference" or _colour_bits(other, rgb, other_base) < _colour_bits(
-                out, rgb, plain):
+            and out.shape[-1] == fam.OUTPUTS and model_base == "median"):
+        if base == "difference" or _difference_saves(out, rgb, plain) > 0:
+            other, other_base = fam.ignoring_colour(out), fam.difference_base(rgb)
             tune, near = tuning_of(other, rgb, other_base, planes, method, layout, quick)
             zero = np.zeros(3, np.int64)
             tune = Tune.of(np.zeros((3, len(tuning.BANDS) + 1), np.int64), zero, zero,
@@ -585,24 +586,23 @@ def plan_of(out: np.ndarray, rgb: np.ndarray, planes: int, method: str = "adapti
     return Plan(out, plain, tune, near, "model" if tune is None else tune.method)
 
 
-def _colour_bits(out: np.ndarray, rgb: np.ndarray, base: np.ndarray) -> int:
-    """G's and B's untuned code length, in 1/LENGTH_ONE bit: how the encoder weighs two
-    bases. (Measured on 240 retina tiles and 96 photo thumbnails: weighing them after
-    each base's best scale offsets chose no better, at three times the cost.)"""
-    from rowcast.tuningkernel import plane_lengths  # numba: only when coding
+def _difference_saves(out: np.ndarray, rgb: np.ndarray, plain: np.ndarray) -> int:
+    """How much shorter (in 1/LENGTH_ONE bit) G and B code untuned on the
+    colour-difference base than on the plain base (`tuningkernel.colour_costs`): how the
+    encoder weighs the two. (Measured on 240 retina tiles and 96 photo thumbnails:
+    weighing them after each base's best scale offsets chose no better, at three times
+    the cost.)"""
+    from rowcast.tuningkernel import colour_costs  # numba: only when coding
 
-    known = rgb.reshape(3, -1).T.astype(np.int64)
-    flat_base = base.reshape(3, -1).T
-    p = pixel_params(out.reshape(-1, out.shape[-1]), flat_base)
-    residuals = known - flat_base
-    return sum(int(plane_lengths(symbol_lengths(), symbol_columns(known[:, c]), p.ls8[:, c],
-                                 p.means[:, c] + coupling_move(p.couplings, c, residuals),
-                                 0, 0).sum()) for c in (1, 2))
+    on_plain, on_difference = colour_costs(symbol_lengths(), out.reshape(-1, out.shape[-1]),
+                                           rgb.reshape(3, -1).T, plain.reshape(3, -1).T,
+                                           rgb.shape[-1])
+    return on_plain - on_difference
 
 
 def _encode_one(out: np.ndarray, rgb: np.ndarray, planes: int, method: str,
-                layout: str, quick: bool, base: str) -> Coded:
-    plan = plan_of(out, rgb, planes, method, layout, quick, base)
+                layout: str, quick: bool, base: str, model_base: str) -> Coded:
+    plan = plan_of(out, rgb, planes, method, layout, quick, base, model_base)
     out, base, chosen, near = plan.out, plan.base, plan.tune, plan.near
     coder = tuned_coder(chosen, planes, layout, plan.method)
     if out.shape[-1] == fam.OUTPUTS:  # one component: the coder's shared models of the rows
@@ -790,7 +790,7 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
         level_index = tune.tuned - fam.LS_LO
         lead_map = level_index * SUMS + np.repeat(lead_map.reshape(-1), LEVELS)
         q_map = level_index * (2 * feedback.DISTANCES - 1) + feedback.DISTANCES - 1
-    colour = None if tune is None or tune.difference is None else tune.difference[:, None]
+    ignored, colour = colour_flags(engine, tune, batch, planes)  # (B, 1) each, or None
     for y in range(height):
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
@@ -800,8 +800,9 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
         for x in range(width):
             base = base_at(row, terms, x)
             raw = engine.pixel(acc_rows, row, x)
+            if ignored is not None:
+                raw = np.where(ignored, fam.ignoring_colour(raw), raw)
             if colour is not None:  # G's and B's base waits for R's and G's values
-                raw = np.where(colour, fam.ignoring_colour(raw), raw)
                 step = colour_steps_at(row, steps, x)
             coding = base.copy()  # the base the planes are coded on
             p = pixel_params(raw, base, tune, tune_levels=False)
@@ -868,6 +869,17 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
             e_above, e_row = e_row, e_above
         progress(batch)
     return img[:, :planes]
+
+
+def colour_flags(engine: Engine, tune: Tune | None, batch: int,
+                 planes: int) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """(which images' network G and B means and couplings are left out, which images'
+    G and B are coded on the colour-difference base), each (B, 1) bool or None for none:
+    the images of method "difference", and every RGB image of a model of that base."""
+    ignored = None if tune is None or tune.difference is None else tune.difference[:, None]
+    if planes == 3 and engine.model.base == "difference":
+        return ignored, np.ones((batch, 1), bool)
+    return ignored, ignored
 
 
 def _mixed_models(models: entropy.Models, mixed: np.ndarray, rows: np.ndarray,

@@ -2,8 +2,8 @@
 
 The predictor codes a picture group by group (`PixelFormat.groups`: R, G, B together,
 alpha alone, gray or palette indices alone; 1-bit values as 0 and 255). For each group this
-module builds the encoder's own tables, with the tuning the encoder would choose
-(`codec.tuning_of`), and reads off each subpixel's code length, -log2 of its symbol's
+module builds the encoder's own tables, on the base and with the tuning the encoder would
+choose (`codec.plan_of`), and reads off each subpixel's code length, -log2 of its symbol's
 share of its table. Summed, they are the model's cross-entropy that the encoder reports
 for that group (`codec.Coded.cross_entropy`); the tuning's own cost is kept apart, as it
 belongs to no pixel.
@@ -23,7 +23,6 @@ import numpy as np
 
 from rowcast import codec
 from rowcast.entrycodec import ONE_BIT_HIGH
-from rowcast.family import base_prediction
 from rowcast.picture import PALETTE, Picture
 from rowcast.predictor import Engine
 from rowcast.tables import LENGTH_ONE
@@ -57,9 +56,9 @@ def group_bits(engine: Engine, planes: np.ndarray) -> tuple[np.ndarray, float]:
     image (P, H, W) uint8, P 1 or 3, coded as the encoder codes it."""
     count, height, width = planes.shape
     rgb = codec.as_rgb(np.ascontiguousarray(planes))
-    out = engine.parallel(rgb[None])[0]
-    base = base_prediction(rgb)
-    tune, near = codec.tuning_of(out, rgb, base, count)
+    plan = codec.plan_of(engine.parallel(rgb[None])[0], rgb, count,
+                         model_base=engine.model.base)
+    out, base, tune, near = plan.out, plan.base, plan.tune, plan.near
     bits = np.empty((height, width, count))
     rows = max(1, codec.CHUNK // (width * count))
     for y in range(0, height, rows):
@@ -70,7 +69,8 @@ def group_bits(engine: Engine, planes: np.ndarray) -> tuple[np.ndarray, float]:
         hits = tables[np.arange(len(symbols)), symbols].astype(np.float64)
         bits[band] = -np.log2(hits / tables.sum(axis=1, dtype=np.float64)).reshape(
             -1, width, count)
-    tuning = 0.0 if tune is None else codec.header_length(tune, count, "streamed") / LENGTH_ONE
+    tuning = 0.0 if tune is None else codec.header_length(tune, count, "streamed",
+                                                           plan.method) / LENGTH_ONE
     return bits.transpose(2, 0, 1), tuning
 
 

@@ -97,6 +97,16 @@ def difference_base(img: np.ndarray) -> np.ndarray:
     return base
 
 
+# The base a model's card names (`architecture.base`, model file version 2; version 1 cards
+# are "median"): its network's means correct it for every RGB image it codes.
+MODEL_BASES = ("median", "difference")
+
+
+def model_base(img: np.ndarray, kind: str) -> np.ndarray:
+    """The base of every pixel of img (..., 3, H, W) that a model of base `kind` codes on."""
+    return difference_base(img) if kind == "difference" else base_prediction(img)
+
+
 def ignoring_colour(out: np.ndarray) -> np.ndarray:
     """Raw outputs (..., outputs) with those the colour-difference base leaves out set to
     0 (a copy)."""

@@ -88,10 +88,11 @@ class Predictor(nn.Module):
     """Row stack + pixel head; see the module docstring."""
 
     def __init__(self, width: int = 48, hidden: int = 64, depth: int = 4,
-                 left: int = LEFT, activity: bool = False, components: int = 1) -> None:
+                 left: int = LEFT, activity: bool = False, components: int = 1,
+                 base: str = "median") -> None:
         super().__init__()
         self.width, self.hidden, self.depth, self.left = width, hidden, depth, left
-        self.activity, self.components = activity, components
+        self.activity, self.components, self.base = activity, components, base
         rows = [QConv(4, width, 2, 5)] + [QConv(width, width, 2, 3) for _ in range(depth - 1)]
         self.rows = nn.ModuleList(rows)
         self.head1 = QConv(width + 4 * left + 3 * activity, hidden, 1, 1)
@@ -155,7 +156,8 @@ def clamp_ste(x: torch.Tensor, lo: float, hi: float) -> torch.Tensor:
     return x + (torch.clamp(x, lo, hi) - x).detach()
 
 
-def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dict:
+def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool,
+                           base: str = "median") -> dict:
     """Logistic parameters on the integer grid of `family` (rounded when `quant`).
 
     Returns mu4 (B,3,H,W) in quarter pixels (base prediction + correction + channel
@@ -171,7 +173,7 @@ def parameters_from_output(y: torch.Tensor, x: torch.Tensor, quant: bool) -> dic
     components = 1 + (y.shape[1] - fam.OUTPUTS) // fam.MIX_OUTPUTS
     gains = torch.tensor(fam.output_gains(components), dtype=y.dtype, device=y.device)
     q = r(y * gains.view(1, -1, 1, 1))
-    base = torch.from_numpy(fam.base_prediction(x.detach().cpu().numpy())).to(x)
+    base = torch.from_numpy(fam.model_base(x.detach().cpu().numpy(), base)).to(x)
     cp = torch.clamp(q[:, 2 * fam.CHANNELS : fam.OUTPUTS], -fam.COUPLE_MAX, fam.COUPLE_MAX)
     res = x - base
     shift_g = r(cp[:, 0] * res[:, 0] / 16.0)

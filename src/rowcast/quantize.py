@@ -27,6 +27,10 @@ if TYPE_CHECKING:  # training only: loading and running a model needs no torch
 
 FORMAT = "rowcast-model"
 VERSION = 1
+# A card whose network corrects another base than the median one (`family.MODEL_BASES`)
+# names it and has this version, so that rowcast 0.13 and older refuse the file instead
+# of decoding with the wrong base.
+BASE_VERSION = 2
 MULT_BITS = 16  # requantisation multipliers are below 2**16
 MAX_SHIFT = 52  # so that requantisation's rounding term and sum stay exact in float64
 EXACT_F32 = 1 << 24  # integers below this add exactly in float32
@@ -81,6 +85,11 @@ class IntModel:
     def activity(self) -> bool:
         return self.card["architecture"].get("activity") is True  # as the loader counts it
 
+    @property
+    def base(self) -> str:
+        """What the network's means correct (`family.MODEL_BASES`)."""
+        return self.card["architecture"].get("base", "median")
+
 
 def _round(x: np.ndarray) -> np.ndarray:
     return np.floor(x + 0.5)
@@ -115,12 +124,13 @@ def export(net: Predictor, name: str, extra: dict | None = None) -> tuple[dict, 
                           "bound": lay.bound})
     card = {
         "format": FORMAT,
-        "version": VERSION,
+        "version": VERSION if net.base == "median" else BASE_VERSION,
         "name": name,
         "architecture": {"width": net.width, "hidden": net.hidden, "depth": net.depth,
                          "left": net.left, "outputs": fam.outputs(net.components),
                          **({"activity": True} if net.activity else {}),
-                         **({"components": 2} if net.components == 2 else {})},
+                         **({"components": 2} if net.components == 2 else {}),
+                         **({"base": net.base} if net.base != "median" else {})},
         "layers": specs,
         **(extra or {}),
     }
@@ -141,7 +151,8 @@ def to_network(model: IntModel) -> Predictor:
 
     arch = model.card["architecture"]
     net = Predictor(arch["width"], arch["hidden"], arch["depth"], arch["left"],
-                    arch.get("activity") is True, arch.get("components", 1))
+                    arch.get("activity") is True, arch.get("components", 1),
+                    arch.get("base", "median"))
     gains = np.array(fam.output_gains(net.components), dtype=np.float64)
     with torch.no_grad():
         for i, (layer, ints) in enumerate(zip(net.layers(), model.layers, strict=True)):
@@ -191,14 +202,19 @@ def model_from_bytes(data: bytes, origin: str) -> IntModel:
         card = json.loads(meta["rowcast"])
     except (SafetensorError, ValueError, KeyError, TypeError) as exc:
         raise ModelError(f"{origin}: not a rowcast model file ({exc.__class__.__name__})") from None
-    if card.get("format") != FORMAT or card.get("version") != VERSION:
-        raise ModelError(f"{origin}: not a rowcast model file of version {VERSION}")
+    if card.get("format") != FORMAT or card.get("version") not in (VERSION, BASE_VERSION):
+        raise ModelError(f"{origin}: not a rowcast model file of version {VERSION} or "
+                         f"{BASE_VERSION}")
     try:
         layers = tuple(_layer(tensors, i, spec) for i, spec in enumerate(card["layers"]))
         arch = card["architecture"]
         expected = arch["depth"] + 3
         head_inputs = arch["width"] + 4 * arch["left"] + 3 * (arch.get("activity") is True)
         components = arch.get("components", 1)
+        base = arch.get("base")  # named from version 2 on, and never "median"
+        if (card["version"] == BASE_VERSION) != (base is not None) or base not in (
+                None, *fam.MODEL_BASES[1:]):
+            raise ModelError(f"{origin}: a version {card['version']} card with base {base!r}")
         if (len(layers) != expected or components not in (1, 2)
                 or arch["outputs"] != fam.outputs(components)
                 or layers[-1].weight.shape[0] != arch["outputs"]

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rowcast import entropy, feedback, native, rangecoder, tablecdfs
+from rowcast import codec, entropy, feedback, native, rangecoder, tablecdfs
 from rowcast import family as fam
 from rowcast.intkernels import LANES, conv_weights, dense, packed, requantise_into, requantised
 from rowcast.native import jit
@@ -166,8 +166,8 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
     gains = tune.gains if tuned else zeros
     biases = tune.biases if tuned else zeros
     active = tuned and tune.feedback
-    colour = (tune.difference if tuned and tune.difference is not None
-              else np.zeros(batch, np.bool_))
+    ignored, colour = (np.zeros(batch, np.bool_) if f is None else f[:, 0]
+                       for f in codec.colour_flags(engine, tune, batch, planes))
     q = np.full((2, width, 3, batch), feedback.NEUTRAL, np.int64)  # above, this row
     e = np.zeros((2, width, 3, batch), np.int64)
     states = np.stack([s.state for s in streams])
@@ -189,7 +189,8 @@ def decode_rows(engine: Engine, kernel: Kernel, streams: list[Stream], tune, pla
         acc = kernel.head_rows(feats, fam.activity_from_sums(misses, y, width))
         bad = row(y, acc, img, planes, kernel.left, kernel.lefts, kernel.m1, kernel.s1, kernel.w2,
                    kernel.b2, kernel.m2, kernel.s2, kernel.w3, kernel.b3, kernel.m3, kernel.s3,
-                   tuned, levels, origin, couplings, active, gains, biases, colour, q, e, misses,
+                   tuned, levels, origin, couplings, active, gains, biases, ignored, colour, q, e,
+                   misses,
                    counts, columns, surprise, ftab, cdfs, built, states, words, ends, *scratch)
         if bad:
             raise entropy.PayloadError("a payload is not what its model codes (damaged data, "
@@ -260,10 +261,11 @@ def channel_move(c, k0, k1, k2, r0, r1):
 
 @jit
 def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3, s3, tuned, levels,
-         origin, couplings, active, gains, biases, colour, q, e, misses, counts, columns, surprise,
-         ftab, cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
+         origin, couplings, active, gains, biases, ignored, colour, q, e, misses, counts, columns,
+         surprise, ftab, cdfs, built, states, words, ends, lefts, acc1, a1, acc2, a2, acc3, raw):
     """Decode row y of every image in place; returns 1 when a payload is not decodable.
-    colour[b]: image b's G and B are coded on the colour-difference base."""
+    ignored[b]: image b's network G and B means and couplings count as 0; colour[b]: its
+    G and B are coded on the colour-difference base (`codec.colour_flags`)."""
     batch, width = img.shape[0], img.shape[3]
     two = raw.shape[1] > fam.OUTPUTS
     table = np.empty(256, np.float32)
@@ -288,9 +290,10 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
                     left, up = np.int64(img[b, c, y, x - 1]), np.int64(img[b, c, y - 1, x])
                     corner = np.int64(img[b, c, y - 1, x - 1])
                     base[c] = _clamp(left + up - corner, min(left, up), max(left, up))
-            if colour[b]:
+            if ignored[b]:
                 for k in fam.DIFFERENCE_IGNORED:
                     raw[b, k] = 0
+            if colour[b]:
                 for c in range(1, 3):
                     step[c] = _colour_step(img, b, c, y, x)
             for c in range(3):

@@ -65,6 +65,7 @@ class Config:
     left: int = 3
     activity: bool = False
     components: int = 1
+    base: str = "median"  # what the network's means correct (`family.MODEL_BASES`)
     seed: int = 0
     threads: int = 2
     device: str = "cpu"  # where training runs: "cpu", or a torch device such as "cuda"
@@ -98,6 +99,7 @@ def command(cfg: Config) -> str:
     extra += f" --seed {cfg.seed}" * (cfg.seed != Config.seed)
     extra += f" --hidden {cfg.hidden} --left {cfg.left}" + " --activity" * cfg.activity
     extra += f" --components {cfg.components}" * (cfg.components > 1)
+    extra += f" --base {cfg.base}" * (cfg.base != Config.base)
     extra += f" --depth {cfg.depth}" * (cfg.depth != Config.depth)
     extra += f" --width {cfg.width}" * (cfg.width != Config.width)
     extra += f" --device {cfg.device}" * (cfg.device != Config.device)
@@ -311,7 +313,7 @@ def validation_set(held: list[np.ndarray], size: int = 64) -> Tiles:
 
 def bits_per_subpixel(model: Predictor, x: torch.Tensor, mask: torch.Tensor | None = None):
     """Mean cross-entropy in bits per coded subpixel (a tensor, differentiable)."""
-    return mean_bits(parameters_from_output(model(x), x, model.quant), x, mask)
+    return mean_bits(parameters_from_output(model(x), x, model.quant, model.base), x, mask)
 
 
 def mean_bits(params: dict, x: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
@@ -372,7 +374,7 @@ def grow(model: Predictor, hidden: int, left: int, activity: bool,
         raise UsageError("cannot lengthen the left window of a model with the activity input")
     if depth < model.depth or width < model.width:
         raise UsageError("cannot make the row stack shallower or narrower")
-    big = Predictor(width, hidden, depth, left, activity, components)
+    big = Predictor(width, hidden, depth, left, activity, components, model.base)
     big.quant = model.quant
     for old, new in zip(model.rows, big.rows[: model.depth], strict=True):
         _copy_units(old, new, np.arange(old.weight.shape[1]))
@@ -405,7 +407,7 @@ def narrow(model: Predictor, hidden: int) -> Predictor:
     if hidden >= model.hidden:
         return model
     small = Predictor(model.width, hidden, model.depth, model.left, model.activity,
-                      model.components)
+                      model.components, model.base)
     small.quant = model.quant
     small.load_state_dict({k: v for k, v in model.state_dict().items()
                            if not k.startswith(("head1.", "head2.", "out."))}, strict=False)
@@ -457,7 +459,7 @@ def load_checkpoint(out: Path) -> tuple[Predictor, dict]:
     meta = json.loads((out / "checkpoint.json").read_text())
     c = meta["config"]
     model = Predictor(c["width"], c["hidden"], c["depth"], c.get("left", 3),
-                      c.get("activity", False), c.get("components", 1))
+                      c.get("activity", False), c.get("components", 1), c.get("base", "median"))
     model.load_state_dict(load_file(str(out / "checkpoint.safetensors")))
     model.quant = meta["quant"]
     return model, meta
@@ -488,7 +490,8 @@ def resumed_sizes(resume: str) -> dict:
     if (Path(resume) / "checkpoint.json").is_file():
         return asdict(saved_config(json.loads((Path(resume) / "checkpoint.json").read_text())))
     net, _, _ = starting_point(resume)
-    return {"hidden": net.hidden, "left": net.left, "depth": net.depth, "width": net.width}
+    return {"hidden": net.hidden, "left": net.left, "depth": net.depth, "width": net.width,
+            "base": net.base}
 
 
 def training_device(name: str) -> torch.device:
@@ -513,7 +516,8 @@ def train(cfg: Config, log=print) -> Predictor:
     tiles = validation_tiles(cfg, held)
     log(f"pools: {len(photos)} photo reductions, {len(cutouts)} cut-out reductions, "
         f"{0 if tiles is None else len(tiles)} validation tiles")
-    model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components)
+    model = Predictor(cfg.width, cfg.hidden, cfg.depth, cfg.left, cfg.activity, cfg.components,
+                      cfg.base)
     history, commands, step, before = [], [], 0, 0.0
     if cfg.resume:
         model, history, commands = starting_point(cfg.resume)
@@ -522,6 +526,7 @@ def train(cfg: Config, log=print) -> Predictor:
         model = grow(model, max(cfg.hidden, model.hidden), max(cfg.left, model.left),
                      cfg.activity or model.activity, max(cfg.components, model.components),
                      max(cfg.depth, model.depth), max(cfg.width, model.width))
+        model.base = cfg.base  # a resumed network may learn to correct another base
         cfg = replace(cfg, width=model.width, hidden=model.hidden, depth=model.depth,
                       left=model.left, activity=model.activity, components=model.components)
         step, before = history[-1]["steps"], history[-1]["minutes"]
@@ -552,7 +557,7 @@ def train(cfg: Config, log=print) -> Predictor:
             calibrate(model, x)
             model.quant = True
             log(f"step {step}: quantisation-aware from here")
-        params = parameters_from_output(model(x), x, model.quant)
+        params = parameters_from_output(model(x), x, model.quant, model.base)
         loss = mean_bits(params, x, mask)
         opt.zero_grad()
         (loss + RANGE_WEIGHT * params["excess"]).backward()
@@ -619,10 +624,12 @@ def main(
     device: str = "cpu",
     patience: int = 0,
     biases_only: bool = False,
+    base: str | None = None,
 ) -> None:
     """Command line: python -m rowcast.train DATA OUT --minutes M [--resume RUN|MODEL --lr LR]
     [--hidden N --left N --activity --components 2 --depth N --width N --sensor F]
-    [--held-out DIR] [--export FILE] [--device cuda] [--patience N] [--biases-only]; sizes
+    [--held-out DIR] [--export FILE] [--device cuda] [--patience N] [--biases-only]
+    [--base median|difference]; sizes and base
     not given are the defaults for a new run and the run's own when resuming; larger ones
     grow it (see `grow`), a smaller --hidden cuts the head down (`narrow`); --sensor is the
     fraction of
@@ -631,10 +638,13 @@ def main(
     its stem; --device trains on a torch device such as a GPU (the model file it writes
     codes the same on any machine); --patience stops a run validated on --held-out after N
     checks without a better quantised figure, keeping the best; --biases-only trains the
-    layers' biases alone. A refusal (`RowcastError`) exits with its one-line message."""
+    layers' biases alone; --base is what the network's means correct
+    (`family.MODEL_BASES`). A refusal (`RowcastError`) exits with its one-line message."""
     try:
         if components not in (1, 2):
             raise UsageError("--components must be 1 or 2")
+        if base is not None and base not in fam.MODEL_BASES:
+            raise UsageError(f"--base must be one of {', '.join(fam.MODEL_BASES)}")
         sizes = asdict(Config(data, out)) if resume is None else resumed_sizes(resume)
         narrower = resume is not None and hidden is not None and hidden < sizes["hidden"]
         train(Config(data=data, out=out, minutes=minutes, batch=batch, seed=seed, lr=lr,
@@ -642,6 +652,7 @@ def main(
                      hidden=sizes["hidden"] if hidden is None else hidden,
                      left=sizes["left"] if left is None else left, activity=activity,
                      components=components, depth=sizes["depth"] if depth is None else depth,
+                     base=sizes.get("base", "median") if base is None else base,
                      width=sizes["width"] if width is None else width,
                      sensor_fraction=sensor, held_out=held_out, device=device,
                      patience=patience, narrow=narrower, biases_only=biases_only),
@@ -663,12 +674,13 @@ def main(
 
 def integer_bits_per_subpixel(model_bytes: bytes, tiles: Tiles) -> float:
     """Cross-entropy of the exported integer model on tiles: what the coder will pay."""
-    from rowcast.codec import base_prediction, image_tables
+    from rowcast.codec import image_tables
     from rowcast.entropy import cross_entropy_bits
     from rowcast.predictor import Engine
     from rowcast.quantize import model_from_bytes
 
     engine = Engine(model_from_bytes(model_bytes, "exported model"))
+    base = engine.model.base
     x = tiles.x.numpy().astype(np.uint8)
     planes = tiles.mask.sum(dim=1).int().tolist()
     bits = 0.0
@@ -676,7 +688,7 @@ def integer_bits_per_subpixel(model_bytes: bytes, tiles: Tiles) -> float:
         group = x[start : start + 8]
         for out, rgb, p in zip(engine.parallel(group), group, planes[start : start + 8],
                                strict=True):
-            bits += cross_entropy_bits(*image_tables(out, rgb, base_prediction(rgb), p))
+            bits += cross_entropy_bits(*image_tables(out, rgb, fam.model_base(rgb, base), p))
     return bits / (sum(planes) * x[0, 0].size)
 
 

@@ -330,7 +330,7 @@ def _run_training(job: Job, folder: Path, crop: int, log: Log, adapting: bool = 
 
     sizes = (trainer.PRESETS[job.preset] if job.start is None
              else {k: v for k, v in trainer.resumed_sizes(job.start).items()
-                   if k in ("hidden", "left", "depth", "width")})
+                   if k in ("hidden", "left", "depth", "width", "base")})
     cfg = trainer.Config(
         data=str(folder / "train"), out=str(folder / "run"), minutes=job.minutes,
         crop=crop, lr=(ADAPT_LR if adapting else trainer.Config.lr if job.start is None
