@@ -13,9 +13,12 @@ For each set:
   median predictor on each channel) and against the colour-difference base
   (`family.difference_base`: G predicted as R plus the median predictor on G - R, B as G
   plus the median predictor on B - G);
-* rowcast's payloads on the plain base alone, on the colour-difference base alone (method
-  "difference"), as the encoder chooses per image (what `rowcast compress` writes), and the
-  shorter of each image's two (the best a choice could do).
+* the payloads of rowcast 0.11-0.13's default (a model of the median base) on its base
+  alone, on the colour-difference base alone without its network's colour terms (method
+  "difference"), as its encoder chooses per image, and the shorter of each image's two
+  (the best a choice could do);
+* the payloads of the default, whose network was trained to correct the colour-difference
+  base (what `rowcast compress` writes).
 
 Prints the figures and writes benchmarks/COLOUR.md and benchmarks/colour.json.
 """
@@ -41,6 +44,7 @@ from rowcast.predictor import Engine
 from rowcast.quantize import load_model
 
 HERE = Path(__file__).parent
+MEDIAN = "default-2232214be5c6b626"  # the bundled default of rowcast 0.11-0.13
 
 
 def entropy(residuals: np.ndarray) -> float:
@@ -67,8 +71,9 @@ def through_jpeg(images: list[np.ndarray]) -> list[np.ndarray]:
     return out
 
 
-def measure(engine: Engine, name: str, images: list[np.ndarray]) -> dict:
-    """One set's figures; images (3, H, W) uint8."""
+def measure(engine: Engine, trained: Engine, name: str, images: list[np.ndarray]) -> dict:
+    """One set's figures; images (3, H, W) uint8; `engine` a model of the median base,
+    `trained` the default, whose network corrects the colour-difference base."""
     hwc = [np.ascontiguousarray(im.transpose(1, 2, 0)) for im in images]
     jxl = {"joint": sum(len(imagecodecs.jpegxl_encode(t, lossless=True, effort=9))
                         for t in hwc),
@@ -90,20 +95,22 @@ def measure(engine: Engine, name: str, images: list[np.ndarray]) -> dict:
             "rowcast": ours, "jxl9": jxl, "entropy_bits": entropies,
             "difference_base_payloads": int(difference.sum()),
             "chosen_payloads": int(either.sum()), "chosen_difference": chosen,
-            "shorter_of_both": int(np.minimum(plain, difference).sum())}
+            "shorter_of_both": int(np.minimum(plain, difference).sum()),
+            "default_payloads": int(payloads(trained, images, "either")[0].sum())}
 
 
 def main() -> None:
     """Both sets: print the table, write COLOUR.md and colour.json."""
     workers.set_threads(1)
-    engine = Engine(load_model())
+    engine, trained = Engine(load_model(MEDIAN)), Engine(load_model())
     photos = [p for _, p in thumbnails(RGB_PHOTOS, "RGB", crops=4)]
     sets = {"retina tiles": [np.ascontiguousarray(t.transpose(2, 0, 1))
                              for t in tiles("retina")],
             "photo thumbnails": photos, "photo thumbnails through JPEG": through_jpeg(photos)}
-    rows = [measure(engine, name, images) for name, images in sets.items()]
+    rows = [measure(engine, trained, name, images) for name, images in sets.items()]
     result = {"date": date.today().isoformat(), "rowcast": rowcast.__version__,
-              "model": engine.model.name, "sets": rows}
+              "median_model": MEDIAN, "default": trained.model.sha256.hex()[:16],
+              "sets": rows}
     (HERE / "colour.json").write_text(json.dumps(result, indent=1) + "\n")
     lines = [f"# Coding the colour channels together ({result['date']}, rowcast "
              f"{result['rowcast']})", "",
@@ -113,13 +120,16 @@ def main() -> None:
              "images (apart); the residuals' zeroth-order entropy (bits, R G B) against the "
              "median predictor on each channel (plain) and against the colour-difference base "
              "(G from R plus the median on G - R, B from G plus the median on B - G); "
-             "rowcast's payloads on the plain base, on the colour-difference base (method "
-             "`difference`), as the encoder chooses per image (what `rowcast compress` "
-             "writes; how many took the difference base) and the shorter of each image's two. "
-             "Ratios are to the plain base.", "",
-             "| set | rowcast plain | apart | JPEG XL e9 joint | apart | entropy plain | "
-             "entropy difference | difference base | encoder's choice | shorter of both |",
-             "|---|---:|---:|---:|---:|---|---|---:|---:|---:|"]
+             f"the payloads of `{MEDIAN}` (rowcast 0.11-0.13's default, median base) on its "
+             "base, on the colour-difference base without its network's colour terms (method "
+             "`difference`), as its encoder chooses per image (how many took the difference "
+             "base) and the shorter of each image's two; and the payloads of the default "
+             f"(`{result['default']}`), whose network corrects the colour-difference base. "
+             "Ratios are to the first.", "",
+             "| set | median model | apart | JPEG XL e9 joint | apart | entropy plain | "
+             "entropy difference | difference base | encoder's choice | shorter of both | "
+             "default |",
+             "|---|---:|---:|---:|---:|---|---|---:|---:|---:|---:|"]
     for r in rows:
         plain, diff = (" ".join(f"{v:.2f}" for v in r["entropy_bits"][k])
                        for k in ("plain", "difference"))
@@ -130,7 +140,8 @@ def main() -> None:
                      f"({r['difference_base_payloads'] / base:.3f}) | "
                      f"{r['chosen_payloads']} ({r['chosen_payloads'] / base:.3f}; "
                      f"{r['chosen_difference']} of {r['images']}) | {r['shorter_of_both']} "
-                     f"({r['shorter_of_both'] / base:.3f}) |")
+                     f"({r['shorter_of_both'] / base:.3f}) | {r['default_payloads']} "
+                     f"({r['default_payloads'] / base:.3f}) |")
     (HERE / "COLOUR.md").write_text("\n".join(lines) + "\n")
     print("\n".join(lines))
 
