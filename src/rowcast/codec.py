@@ -795,7 +795,7 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
         above = img[:, :, y - 1] if y else None
         acc_rows = engine.next_row(state, above, fam.activity_from_sums(misses, y, width))
         terms = None if above is None else base_terms(above)
-        steps = None if above is None else base_terms(channel_steps(above))
+        steps = None if above is None or colour is None else base_terms(channel_steps(above))
         row = img[:, :, y]
         for x in range(width):
             base = base_at(row, terms, x)
@@ -804,7 +804,7 @@ def _decode_rows(engine: Engine, decoders: list, tune: Tune | None, planes: int,
                 raw = np.where(ignored, fam.ignoring_colour(raw), raw)
             if colour is not None:  # G's and B's base waits for R's and G's values
                 step = colour_steps_at(row, steps, x)
-            coding = base.copy()  # the base the planes are coded on
+            coding = base if colour is None else base.copy()  # the base the planes are coded on
             p = pixel_params(raw, base, tune, tune_levels=False)
             if tune is None:  # a table's row is its level's row + its mean
                 level_rows = table_rows(0, p.ls8)

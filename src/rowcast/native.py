@@ -65,7 +65,7 @@ ENTRIES = {
                 f"void({_I8}, {_I8}, {_I8}, {_I8}, i8[:,::1], i8[:,::1], {_I8}, i8[:,::1])"),
     "coupled_sums": ("tuningkernel", "_coupled_sums", f"void({', '.join([_I8] * 11)})"),
     "colour_costs": ("tuningkernel", "_colour_costs",
-                     "void(i8[::1], i8[:,::1], i8[:,::1], i8[:,::1], i8, i8[::1])"),
+                     "void(i8[::1], i8[:,::1], i8[:,::1], i8[:,::1], i8[:,::1], i8, i8[::1])"),
     "feedback": ("tuningkernel", "_feedback", "void(i8[:,::1], i8[:,::1], i8[:,::1], "
                  "i8[:,::1], i8[:,::1], i8[::1], i8, i8[:,::1], i8[:,::1], i8[:,::1], "
                  "i8[:,::1])"),

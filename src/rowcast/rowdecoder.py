@@ -249,6 +249,18 @@ def _clamp(v, lo, hi):
 
 
 @jit(inline="always")
+def edge_median(left, up, corner, x, y, origin):
+    """The median predictor from a value's left, upper and upper-left neighbours, at the
+    edges as `family.median_predictor`: the left one on the top row, the upper one in the
+    first column, `origin` at the origin (neighbours outside the image are not read)."""
+    if y == 0:
+        return left if x else origin
+    if x == 0:
+        return up
+    return _clamp(left + up - corner, min(left, up), max(left, up))
+
+
+@jit(inline="always")
 def channel_move(c, k0, k1, k2, r0, r1):
     """How far the channel couplings k (G<-R, B<-R, B<-G) move plane c's mean, from the
     residuals r0, r1 of R and G: floor((k r + 8) / 16), as `codec.coupling_move`."""
@@ -282,14 +294,10 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
               acc1, a1, acc2, a2, acc3, raw)
         for b in range(batch):
             for c in range(3):
-                if y == 0:
-                    base[c] = np.int64(img[b, c, 0, x - 1]) if x else 128
-                elif x == 0:
-                    base[c] = img[b, c, y - 1, 0]
-                else:
-                    left, up = np.int64(img[b, c, y, x - 1]), np.int64(img[b, c, y - 1, x])
-                    corner = np.int64(img[b, c, y - 1, x - 1])
-                    base[c] = _clamp(left + up - corner, min(left, up), max(left, up))
+                base[c] = edge_median(np.int64(img[b, c, y, x - 1]) if x else 0,
+                                      np.int64(img[b, c, y - 1, x]) if y else 0,
+                                      np.int64(img[b, c, y - 1, x - 1]) if x and y else 0,
+                                      x, y, 128)
             if ignored[b]:
                 for k in fam.DIFFERENCE_IGNORED:
                     raw[b, k] = 0
@@ -376,11 +384,8 @@ def _row(y, acc, img, planes, wl, lefts_seen, m1, s1, w2, b2, m2, s2, w3, b3, m3
 def _colour_step(img, b, c, y, x):
     """The colour-difference base's step of plane c (1: G - R, 2: B - G) at (y, x): the
     median predictor on that difference, as `family.difference_base`."""
-    if y == 0:
-        return (np.int64(img[b, c, 0, x - 1]) - np.int64(img[b, c - 1, 0, x - 1])) if x else 0
-    up = np.int64(img[b, c, y - 1, x]) - np.int64(img[b, c - 1, y - 1, x])
-    if x == 0:
-        return up
-    left = np.int64(img[b, c, y, x - 1]) - np.int64(img[b, c - 1, y, x - 1])
-    corner = np.int64(img[b, c, y - 1, x - 1]) - np.int64(img[b, c - 1, y - 1, x - 1])
-    return _clamp(left + up - corner, min(left, up), max(left, up))
+    left = (np.int64(img[b, c, y, x - 1]) - np.int64(img[b, c - 1, y, x - 1])) if x else 0
+    up = (np.int64(img[b, c, y - 1, x]) - np.int64(img[b, c - 1, y - 1, x])) if y else 0
+    corner = (np.int64(img[b, c, y - 1, x - 1]) - np.int64(img[b, c - 1, y - 1, x - 1])
+              if x and y else 0)
+    return edge_median(left, up, corner, x, y, 0)

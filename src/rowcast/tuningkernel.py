@@ -14,8 +14,8 @@ import numpy as np
 from rowcast import family as fam
 from rowcast import feedback, native
 from rowcast.native import jit
-from rowcast.rowdecoder import channel_move
-from rowcast.tables import LEVELS, SPAN
+from rowcast.rowdecoder import channel_move, edge_median
+from rowcast.tables import SPAN, symbol_columns
 
 
 @jit
@@ -87,30 +87,25 @@ def coupled_sums(lengths: np.ndarray, columns: np.ndarray, levels: np.ndarray,
 
 
 @jit
-def _colour_costs(lengths, out, known, plain, width, totals):
+def _colour_costs(lengths, out, known, columns, plain, width, totals):
     """totals[0], totals[1]: G's and B's untuned code length on the plain base (the
     network's means and couplings) and on the colour-difference base (neither)."""
     for i in range(len(known)):
-        x = i % width
+        x, y = i % width, i // width
         r0, r1 = known[i, 0] - plain[i, 0], known[i, 1] - plain[i, 1]
         k0 = min(max(out[i, 2 * fam.CHANNELS], -fam.COUPLE_MAX), fam.COUPLE_MAX)
         k1 = min(max(out[i, 2 * fam.CHANNELS + 1], -fam.COUPLE_MAX), fam.COUPLE_MAX)
         k2 = min(max(out[i, 2 * fam.CHANNELS + 2], -fam.COUPLE_MAX), fam.COUPLE_MAX)
         for c in range(1, 3):
-            v = known[i, c]
-            kind = (1 if v > 0 else 0) + (1 if v == 255 else 0)
-            column = (kind * LEVELS - fam.LS_LO) * SPAN + fam.MU_HI + 4 * v
+            column = columns[i, c]
             level = min(max(out[i, 2 * c + 1], fam.LS_LO), fam.LS_HI) * SPAN
             mean = out[i, 2 * c] + fam.MU_SCALE * plain[i, c] + channel_move(c, k0, k1, k2,
                                                                              r0, r1)
             totals[0] += lengths[column + level - min(max(mean, fam.MU_LO), fam.MU_HI)]
-            left = known[i - 1, c] - known[i - 1, c - 1] if x else 0
-            if i < width:
-                step = left
-            else:
-                up = known[i - width, c] - known[i - width, c - 1]
-                corner = known[i - width - 1, c] - known[i - width - 1, c - 1] if x else 0
-                step = min(max(left + up - corner, min(left, up)), max(left, up)) if x else up
+            step = edge_median(known[i - 1, c] - known[i - 1, c - 1] if x else 0,
+                               known[i - width, c] - known[i - width, c - 1] if y else 0,
+                               (known[i - width - 1, c] - known[i - width - 1, c - 1]
+                                if x and y else 0), x, y, 0)
             mean = fam.MU_SCALE * min(max(known[i, c - 1] + step, 0), 255)
             totals[1] += lengths[column + level - min(max(mean, fam.MU_LO), fam.MU_HI)]
 
@@ -122,7 +117,8 @@ def colour_costs(lengths: np.ndarray, out: np.ndarray, known: np.ndarray, plain:
     and plain base (N, 3). The lengths are `symbol_lengths()` at `count_index`, as
     `plane_lengths` looks them up; the difference base is `family.difference_base`."""
     totals = np.zeros(2, np.int64)
-    native.kernels().colour_costs(*_flat(lengths, out, known, plain), width, totals)
+    native.kernels().colour_costs(*_flat(lengths, out, known, symbol_columns(known), plain),
+                                  width, totals)
     return int(totals[0]), int(totals[1])
 
 
